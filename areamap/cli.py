@@ -1,0 +1,279 @@
+"""Command-line interface: ``areamap <subcommand> ...``.
+
+The CLI is a thin layer over the public API; every number it prints can be
+obtained from Python. Each subcommand is one ``_cmd_<name>(args) -> int``
+function and one small block in :func:`_build_parser`.
+
+Exit codes
+----------
+0
+    Success.
+1
+    Unexpected internal error (a bug; please report it). Set the environment
+    variable ``AREAMAP_DEBUG=1`` to see the traceback.
+2
+    The input, configuration or a parameter is unusable; the message says why
+    and how to fix it.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import sys
+import traceback
+import warnings
+from collections.abc import Sequence
+from pathlib import Path
+
+from . import __version__
+from .errors import AreamapError, AreamapWarning
+
+__all__ = ["main"]
+
+
+# --------------------------------------------------------------------------- subcommands
+def _cmd_check(args: argparse.Namespace) -> int:
+    """Validate a run configuration and its input files; print a compact summary."""
+    from .config import load_config
+    from .intake import check_study
+
+    config = load_config(args.config)
+    report = check_study(config)
+    print(report.summary())
+    return 0
+
+
+def _cmd_demo(args: argparse.Namespace) -> int:
+    """Write the invented demo region and run the bulletin on its last two weeks."""
+    from .demo import write_demo
+
+    config_path = write_demo(Path(args.out), seed=args.seed)
+    print(f"Demo data written to {config_path.parent}")
+    print(f"Run configuration: {config_path}")
+    result = _demo_bulletins(config_path, Path(args.out) / "bulletin")
+    print(result.summary())
+    print(f"Open {result.out / 'index.html'} in a browser; history: areamap history {config_path}")
+    return 0
+
+
+def _demo_bulletins(config_path: Path, out: Path):
+    """Run the bulletin on the demo for its last two weeks (archiving both), so the history shows."""
+    from .bulletin import run_bulletin
+    from .config import load_config
+    from .demo import DEMO_LAST_WEEK
+    from .intake import weeks_ending
+
+    config = load_config(config_path)
+    progress = _progress_printer(False)
+    result = None
+    for week in weeks_ending(DEMO_LAST_WEEK, 2):
+        result = run_bulletin(config, period=week, out=out, progress=progress)
+    return result
+
+
+def _progress_printer(quiet: bool):
+    """Progress lines on stderr, only on an interactive terminal and without --quiet."""
+    if quiet or not sys.stderr.isatty():
+        return None
+    return lambda message: print(message, file=sys.stderr, flush=True)
+
+
+def _cmd_bulletin(args: argparse.Namespace) -> int:
+    """Run the weekly bulletin for one period and write its folder."""
+    from .bulletin import run_bulletin
+
+    result = run_bulletin(args.config, period=args.period, out=args.out, public=args.public,
+                          progress=_progress_printer(args.quiet))
+    if not args.quiet:
+        print(result.summary())
+    return 0
+
+
+def _cmd_history(args: argparse.Namespace) -> int:
+    """Print a district's (or every recently flagged district's) recent periods from the archive."""
+    from .archive import HistoryArchive
+    from .config import load_config
+    from .errors import ArchiveError
+
+    config = load_config(args.config)
+    archive = HistoryArchive(config.output.archive)
+    if not archive.path.exists():
+        raise ArchiveError(
+            f"No history archive at {archive.path} yet. Run 'areamap bulletin {args.config}' first."
+        )
+    table = archive.history(area=args.area, last=args.last)
+    print(_history_text(table, area=args.area, last=args.last))
+    return 0
+
+
+def _history_text(table, *, area, last: int) -> str:
+    """Plain-text table of archived periods (counts as archived, unsuppressed: for analysts)."""
+    who = f"area {area}" if area else "districts flagged"
+    head = f"History ({who}, last {last} archived period(s)):"
+    if table.empty:
+        return head + "\n(no flagged districts in these periods)"
+    cols = ["period", "area_id", "area_name", "observed", "expected", "rr", "p_above_1", "cluster",
+            "flag", "flag_change", "weeks_flagged"]
+    shown = table[[c for c in cols if c in table.columns]].copy()
+    for c, digits in (("expected", 1), ("rr", 2), ("p_above_1", 2)):
+        if c in shown:
+            shown[c] = shown[c].map(lambda x, d=digits: "" if x is None or x != x else f"{x:.{d}f}")
+    shown["flag"] = shown["flag"].map({True: "yes", False: "no"})
+    return head + "\n" + shown.to_string(index=False)
+
+
+# --------------------------------------------------------------------------- parser
+def _build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="areamap",
+        description=(
+            "Disease mapping for area-aggregated case counts: check inputs, build the "
+            "weekly bulletin, explore an invented demo region."
+        ),
+    )
+    parser.add_argument("--version", action="version", version=f"areamap {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+
+    # check
+    p = sub.add_parser(
+        "check",
+        help="validate a run configuration and its input files",
+        description=(
+            "Read the run configuration and every file it names, check ids, counts, "
+            "weeks, age groups and geometries, build the neighbour graph and print a "
+            "compact summary. Exit code 0 when the inputs are usable, 2 otherwise."
+        ),
+    )
+    p.add_argument("config", help="path to the run configuration (TOML), e.g. run.toml")
+    p.set_defaults(func=_cmd_check)
+
+    # demo
+    p = sub.add_parser(
+        "demo",
+        help="write an invented demo region and run the bulletin on it",
+        description=(
+            "Write invented districts (GeoPackage), weekly case counts, population by "
+            "age group, the true relative risks and a ready run.toml to a folder, then run "
+            "the bulletin on its last two weeks (DIR/bulletin for the latest; both archived in "
+            "DIR/history.sqlite). All names and numbers are invented."
+        ),
+    )
+    p.add_argument("--out", required=True, help="output folder (created if missing)")
+    p.add_argument("--seed", type=int, default=20261202, help="random seed (default: 20261202)")
+    p.set_defaults(func=_cmd_demo)
+
+    # bulletin
+    p = sub.add_parser(
+        "bulletin",
+        help="run the weekly bulletin for one period (index.html, areas.csv, areas.gpkg, run.json)",
+        description=(
+            "Intake and checks, expected counts and ratios, empirical-Bayes and CAR smoothing, "
+            "Moran's I, local clusters, hotspot flags compared with the previous period, figures "
+            "and outputs; the period is then added to the history archive. Exit code 0 on success, "
+            "2 on unusable input (nothing is written then), 1 on an internal error."
+        ),
+    )
+    p.add_argument("config", help="path to the run configuration (TOML), e.g. run.toml")
+    p.add_argument("--period", default=None,
+                   help="ISO week ending the analysed window, e.g. 2026-W47, or 'latest' (default: [period] week)")
+    p.add_argument("--out", default=None, help="output folder (default: 'bulletin' beside the configuration)")
+    p.add_argument("--public", action="store_true",
+                   help="also suppress small counts in areas.csv and areas.gpkg (the HTML always does)")
+    p.add_argument("--quiet", action="store_true", help="print nothing on success (for scheduled runs)")
+    p.set_defaults(func=_cmd_bulletin)
+
+    # history
+    p = sub.add_parser(
+        "history",
+        help="print a district's recent periods (or every recently flagged district) from the archive",
+        description=(
+            "Read the history archive named by [output] archive and print, as a plain table, the "
+            "recent periods of one district (--area) or of every district flagged in those periods."
+        ),
+    )
+    p.add_argument("config", help="path to the run configuration (TOML)")
+    p.add_argument("--area", default=None, help="area id (default: every district flagged in the periods)")
+    p.add_argument("--last", type=int, default=8, help="number of most recent archived periods (default: 8)")
+    p.set_defaults(func=_cmd_history)
+
+    return parser
+
+
+# --------------------------------------------------------------------------- entry point
+def _show_warning(message, category, filename, lineno, file=None, line=None) -> None:
+    """Print project warnings as one 'warning: ...' line; others in Python's format."""
+    stream = file if file is not None else sys.stderr
+    if issubclass(category, AreamapWarning):
+        text = f"warning: {message}\n"
+    else:
+        text = warnings.formatwarning(message, category, filename, lineno, line)
+    try:
+        stream.write(text)
+    except OSError:  # pragma: no cover - stderr closed
+        pass
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Run the ``areamap`` command line and return the exit code.
+
+    Parameters
+    ----------
+    argv : sequence of str, optional
+        Arguments without the program name; defaults to ``sys.argv[1:]``.
+
+    Returns
+    -------
+    int
+        0 on success, 2 for unusable input or configuration, 1 for an
+        unexpected internal error.
+
+    Examples
+    --------
+    >>> main(["--help"])  # doctest: +ELLIPSIS
+    usage: areamap ...
+    0
+    """
+    parser = _build_parser()
+    try:
+        args = parser.parse_args(None if argv is None else list(argv))
+    except SystemExit as exc:  # --help, --version, or a usage error
+        code = exc.code
+        return code if isinstance(code, int) else (0 if code is None else 2)
+    if getattr(args, "func", None) is None:
+        parser.print_help(sys.stderr)
+        return 2
+
+    debug = os.environ.get("AREAMAP_DEBUG", "") not in ("", "0")
+    old_show = warnings.showwarning
+    warnings.showwarning = _show_warning
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("default", AreamapWarning)
+            warnings.showwarning = _show_warning
+            return int(args.func(args))
+    except AreamapError as exc:
+        if debug:
+            traceback.print_exc()
+        print(f"error: {exc}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("interrupted", file=sys.stderr)
+        return 130
+    except Exception as exc:  # noqa: BLE001 - last line of defence of the CLI
+        if debug:
+            traceback.print_exc()
+        first = str(exc).splitlines()[0] if str(exc) else ""
+        print(
+            f"internal error: {type(exc).__name__}: {first}\n"
+            "This is a bug in areamap; please report it with the command you ran "
+            "(set AREAMAP_DEBUG=1 to see the traceback).",
+            file=sys.stderr,
+        )
+        return 1
+    finally:
+        warnings.showwarning = old_show
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())
