@@ -727,7 +727,7 @@ def moran_scatter(values, graph: AreaGraph) -> pd.DataFrame:
 
     References
     ----------
-    Anselin, L. (1996). The Moran scatterplot as an ESDA tool to assess local
+    Anselin, L. (1996). The Moran scatterplot as an exploratory spatial data analysis tool to assess local
     instability in spatial association. In Fischer, Scholten & Unwin (eds.),
     Spatial Analytical Perspectives on GIS. Taylor & Francis, London.
 
@@ -1151,6 +1151,15 @@ def _local_core(
             f"{'adjusted ' if adjust == 'bonferroni' else ''}p-value is "
             f"{floor * (m if adjust == 'bonferroni' else 1):.3g} > alpha = {alpha:g}; "
             "no area can be labelled. Increase 'permutations'."
+        )
+    elif adjust == "fdr" and floor * m > alpha:
+        # Benjamini-Hochberg labels the k smallest p-values only if p_(k) <= k alpha / m.
+        need = math.ceil(floor * m / alpha)
+        notes.append(
+            f"with {permutations} permutations and {m} tested areas, the false-discovery-rate control can "
+            f"label areas only when at least {need} of them reach the smallest possible p-value "
+            f"{floor:.3g}; isolated hot spots cannot be detected. Use at least {math.ceil(m / alpha) - 1} "
+            "permutations so that a single area can reach significance."
         )
     return LocalClusterResult(
         ids=graph.ids,

@@ -707,8 +707,10 @@ def run_bulletin(
 
         cl = cfg.clusters
         moran = rate_morans_i(observed, expected, graph, permutations=cl.permutations, seed=cfg.seed)
-        local = rate_local_clusters(observed, expected, graph, statistic=cl.statistic, permutations=cl.permutations,
-                                    seed=cfg.seed, adjust=cl.adjust, alpha=cl.alpha).to_frame().reindex(ids)
+        local_result = rate_local_clusters(observed, expected, graph, statistic=cl.statistic,
+                                           permutations=cl.permutations, seed=cfg.seed, adjust=cl.adjust,
+                                           alpha=cl.alpha)
+        local = local_result.to_frame().reindex(ids)
 
         steps.start("flags", "flags and comparison with the previous period")
         table = pd.DataFrame(index=ids)
@@ -776,7 +778,7 @@ def run_bulletin(
                   "previous_period": changes.previous_period,
                   "previous_available": changes.previous_available},
         "suppress_below": cfg.output.suppress_below,
-        "notes": list(getattr(study, "notes", ())),
+        "notes": [*getattr(study, "notes", ()), *(f"Local clusters: {n}" for n in local_result.notes)],
         "warnings": run_warnings,
         "timings_seconds": steps.timings,
     }

@@ -260,6 +260,12 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("interrupted", file=sys.stderr)
         return 130
+    except BrokenPipeError:
+        # Output piped into a program that stopped reading (`areamap history ... | head`): not an error.
+        # Point stdout at devnull so the interpreter's final flush does not fail again.
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return 0
     except Exception as exc:  # noqa: BLE001 - last line of defence of the CLI
         if debug:
             traceback.print_exc()

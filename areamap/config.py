@@ -204,7 +204,9 @@ class ClustersConfig:
         choices=("local_moran", "gi_star"),
     )
     permutations: int = _key(
-        999, "int", "Conditional permutations per area for the pseudo p-values (>= 19; 999 is usual).", low=19
+        9999, "int", "Conditional permutations per area for the pseudo p-values (>= 19). The smallest possible "
+        "p-value is 1/(permutations + 1); with false-discovery-rate control over m areas a single area can only "
+        "reach significance when permutations >= m/alpha - 1, hence the default 9999.", low=19
     )
     adjust: str = _key(
         "fdr", "choice",
@@ -305,7 +307,7 @@ class RunConfig:
     >>> cfg = config_from_dict({"boundaries": {"file": "a.gpkg"}, "cases": {"file": "c.csv"},
     ...                         "population": {"file": "p.csv"}}, base_dir="/data", check_files=False)
     >>> cfg.clusters.permutations, cfg.graph.method, cfg.cases.file.name
-    (999, 'queen', 'c.csv')
+    (9999, 'queen', 'c.csv')
     """
 
     path: Path | None = None

@@ -290,7 +290,7 @@ window_weeks = 1
 
 [clusters]
 statistic = "local_moran"
-permutations = 999
+permutations = 9999
 adjust = "fdr"
 alpha = 0.05
 

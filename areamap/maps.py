@@ -1146,7 +1146,8 @@ def funnel_plot(
         ax.set_xscale("log")
     ax.set_xlabel("Expected count")
     ax.set_ylabel("Standardized ratio (observed / expected)")
-    ax.set_ylim(bottom=0)
+    # The limits explode as E -> 0; scale the axis to the points, not to the limits at tiny E.
+    ax.set_ylim(0, max(2.0, 1.15 * float(ratio.max())))
     ax.legend(fontsize=7.5, frameon=False, loc="upper right")
     if title:
         ax.set_title(_plain(title), loc="left", fontsize=11)
@@ -1189,7 +1190,7 @@ def moran_scatterplot(values, graph, *, ax: Axes | None = None, title: str | Non
 
     References
     ----------
-    Anselin, L. (1996). The Moran scatterplot as an ESDA tool to assess local
+    Anselin, L. (1996). The Moran scatterplot as an exploratory spatial data analysis tool to assess local
     instability in spatial association. In Fischer, Scholten & Unwin (eds),
     Spatial Analytical Perspectives on GIS, 111–125.
 

@@ -34,6 +34,8 @@ from .graphs import AreaGraph
 __all__ = ["CarPriors", "CarFit", "fit_car"]
 
 _MODELS = ("bym2", "leroux", "icar")
+#: above this many areas the hyperparameters are integrated with Gauss–Hermite nodes instead of a grid
+GRID_LIMIT = 3000
 _GH_NODES, _GH_WEIGHTS = np.polynomial.hermite_e.hermegauss(24)
 _GH_WEIGHTS = _GH_WEIGHTS / _GH_WEIGHTS.sum()
 
@@ -197,10 +199,18 @@ class CarFit:
         ]
         for name, row in self.hyperparameters.iterrows():
             lines.append(f"  {name:<10} {row['mean']:.3f} ({row['q025']:.3f} to {row['q975']:.3f})")
-        lines.append("Fixed effects (rate ratio per SD, 95% interval):")
-        for name, row in self.coefficients.iterrows():
+        row = self.coefficients.iloc[0]
+        lines.append(
+            f"Overall relative risk at the covariate means: {row['rr_per_sd']:.3f} "
+            f"({row['rr_per_sd_low']:.3f} to {row['rr_per_sd_high']:.3f})"
+        )
+        if len(self.coefficients) > 1:
+            lines.append("Covariates (rate ratio per SD and per unit, 95% intervals):")
+        for name, row in self.coefficients.iloc[1:].iterrows():
             lines.append(
-                f"  {name:<10} {row['rr_per_sd']:.3f} ({row['rr_per_sd_low']:.3f} to {row['rr_per_sd_high']:.3f})"
+                f"  {name:<14} per SD {row['rr_per_sd']:.3f} ({row['rr_per_sd_low']:.3f} to "
+                f"{row['rr_per_sd_high']:.3f}); per unit {row['rr_per_unit']:.4g} "
+                f"({row['rr_per_unit_low']:.4g} to {row['rr_per_unit_high']:.4g})"
             )
         lines.append(f"Share of area-effect variance that is spatial: {self.fraction_spatial:.2f}")
         lines.append(
@@ -482,13 +492,19 @@ def _fit(ids, graph, y, e, xc, names, *, model, priors, threshold, _fixed_theta=
                               coefficient_sd=priors.coefficient_sd)
     log_prior = _log_prior_fn(model, gs, priors)
     lam = priors.sigma_rate
-    s0 = np.log(min(0.5, 1.0 / lam))
+    # starting value: moment estimate of the SD of the log relative risks beyond Poisson noise
+    raw = np.log((y + 0.5) / e)
+    excess = np.var(raw) - np.mean(1.0 / (y + 0.5))
+    s0 = np.log(np.clip(np.sqrt(max(excess, 0.0)), 0.05, 2.0))
+    s0 = min(s0, np.log(2.0 / lam))
     if model == "icar":
         theta0, bounds = np.array([s0]), [(np.log(1e-3 / lam), np.log(50.0))]
     else:
         theta0 = np.array([s0, 0.0])
         bounds = [(np.log(1e-3 / lam), np.log(50.0)), (-9.0, 9.0)]
-    design = eng.integrate_hyperparameters(log_prior, latent, theta0, bounds, fixed=_fixed_theta)
+    strategy = "grid" if len(ids) <= GRID_LIMIT else "gauss-hermite"
+    design = eng.integrate_hyperparameters(log_prior, latent, theta0, bounds, fixed=_fixed_theta,
+                                           strategy=strategy)
     if design.edge:
         eng.warn_edge(model)
         notes.append("Hyperparameter posterior reaches the edge of the integration design.")
@@ -496,12 +512,12 @@ def _fit(ids, graph, y, e, xc, names, *, model, priors, threshold, _fixed_theta=
     mu = np.column_stack([r.mean_eta for r in design.results])
     sd = np.sqrt(np.column_stack([r.var_eta for r in design.results]))
     # relative risk summaries from the Gaussian mixture of log RR
-    rr_mean = np.exp(mu + 0.5 * sd**2) @ w
-    rr_m2 = np.exp(2 * mu + 2 * sd**2) @ w
+    rr_mean = eng.mix(np.exp(mu + 0.5 * sd**2), w)
+    rr_m2 = eng.mix(np.exp(2 * mu + 2 * sd**2), w)
     rr_sd = np.sqrt(np.maximum(rr_m2 - rr_mean**2, 0.0))
     q_lo, q_med, q_hi = eng.mixture_quantiles(mu, sd, w, (0.025, 0.5, 0.975))
-    p1 = ndtr(mu / sd) @ w
-    pc = ndtr((mu - np.log(threshold)) / sd) @ w
+    p1 = eng.mix(ndtr(mu / sd), w)
+    pc = eng.mix(ndtr((mu - np.log(threshold)) / sd), w)
     crit = _criteria(y, e, mu, sd, w)
     hyper, frac = _hyper_table(model, design)
     coef = _coef_table(design, names, xmean, xsd)
@@ -544,16 +560,16 @@ def _criteria(y, e, mu, sd, w):
     e_logp = np.zeros(n)
     e_logp2 = np.zeros(n)
     midp = np.zeros(n)
-    eta_mean = mu @ w
+    eta_mean = eng.mix(mu, w)
     for k in range(w.size):
         eta = log_e[:, None] + mu[:, k:k + 1] + sd[:, k:k + 1] * _GH_NODES[None, :]
         lam = np.exp(eta)
         logp = y[:, None] * eta - lam - lgy[:, None]
-        e_lik += w[k] * (np.exp(logp - shift[:, None]) @ _GH_WEIGHTS)
-        e_logp += w[k] * (logp @ _GH_WEIGHTS)
-        e_logp2 += w[k] * (logp**2 @ _GH_WEIGHTS)
+        e_lik += w[k] * eng.mix(np.exp(logp - shift[:, None]), _GH_WEIGHTS)
+        e_logp += w[k] * eng.mix(logp, _GH_WEIGHTS)
+        e_logp2 += w[k] * eng.mix(logp**2, _GH_WEIGHTS)
         below = np.where(y[:, None] > 0, pdtr(y[:, None] - 1.0, lam), 0.0)
-        midp += w[k] * ((below + 0.5 * np.exp(logp)) @ _GH_WEIGHTS)
+        midp += w[k] * eng.mix(below + 0.5 * np.exp(logp), _GH_WEIGHTS)
     lppd = np.log(e_lik) + shift
     p_waic = np.maximum(e_logp2 - e_logp**2, 0.0)
     waic = -2.0 * (lppd.sum() - p_waic.sum())
@@ -566,8 +582,8 @@ def _criteria(y, e, mu, sd, w):
 
 
 def _summ(values, weights):
-    mean = float(values @ weights)
-    sd = float(np.sqrt(max((values - mean) ** 2 @ weights, 0.0)))
+    mean = float(np.einsum('i,i->', values, weights))
+    sd = float(np.sqrt(max(np.einsum('i,i->', (values - mean) ** 2, weights), 0.0)))
     q = eng.weighted_quantiles(values, weights, [0.025, 0.5, 0.975])
     return {"mean": mean, "sd": sd, "q025": q[0], "q50": q[1], "q975": q[2]}
 
@@ -595,8 +611,8 @@ def _coef_table(design, names, xmean, xsd):
     w = design.weights
     bm = np.column_stack([r.beta_mean for r in design.results])
     bs = np.sqrt(np.column_stack([r.beta_var for r in design.results]))
-    mean = bm @ w
-    sd = np.sqrt(np.maximum((bm**2 + bs**2) @ w - mean**2, 0.0))
+    mean = eng.mix(bm, w)
+    sd = np.sqrt(np.maximum(eng.mix(bm**2 + bs**2, w) - mean**2, 0.0))
     lo, med, hi = eng.mixture_quantiles(bm, bs, w, (0.025, 0.5, 0.975))
     scale = np.concatenate([[1.0], xsd])
     table = pd.DataFrame(

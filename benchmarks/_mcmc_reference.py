@@ -102,8 +102,8 @@ def _import_numpyro():
         raise ImportError(_INSTALL_HINT) from exc
 
 
-def time_mcmc_bym2(n_side: int = 30, seed: int = 0, *, num_chains: int = 4, num_warmup: int = 1000,
-                   num_samples: int = 1000, target_accept: float = 0.95) -> dict:
+def time_mcmc_bym2(n_side: int = 30, seed: int = 0, *, num_chains: int = 4, num_warmup: int = 2000,
+                   num_samples: int = 2000, target_accept: float = 0.95) -> dict:
     """Time NUTS on BYM2 with two covariates on a simulated grid.
 
     Four chains are run one after another (``chain_method="sequential"``) on the CPU, so the

@@ -45,10 +45,12 @@ def simulate(graph, seed: int = 20261202):
     rng = np.random.default_rng(seed)
     n = graph.n
     w = graph.weights("row")
-    field = rng.normal(size=n)
-    for _ in range(5):
-        field = w @ field
-    field = 0.3 * field / field.std() + 0.1 * rng.normal(size=n)
+    smooth = rng.normal(size=n)
+    for _ in range(3):
+        smooth = w @ smooth
+    smooth = (smooth - smooth.mean()) / smooth.std()
+    # BYM2-like area effect: sigma = 0.35, spatial share 0.6
+    field = 0.35 * (np.sqrt(0.6) * smooth + np.sqrt(0.4) * rng.normal(size=n))
     x = rng.normal(size=(n, 2))
     e = rng.uniform(2.0, 20.0, n)
     y = rng.poisson(e * np.exp(field + x @ np.array([0.15, -0.1])))
@@ -67,12 +69,14 @@ def _child(n: int) -> None:
     g = queen_grid(side, side)
     y, e, x = simulate(g)
     t1 = time.perf_counter()
+    c1 = time.process_time()
     fit = fit_car(y, e, g, covariates=x)
     t2 = time.perf_counter()
+    cpu = time.process_time() - c1
     peak_mb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
     d = fit._design
     print(json.dumps({
-        "n": g.n, "setup_s": t1 - t0, "fit_s": t2 - t1, "peak_mb": peak_mb,
+        "n": g.n, "setup_s": t1 - t0, "fit_s": t2 - t1, "cpu_s": cpu, "peak_mb": peak_mb,
         "design_points": fit.n_design_points, "laplace_evaluations": d.n_evaluations,
         "coef": fit.coefficients["mean"].round(4).tolist(),
         "sigma": float(fit.hyperparameters.loc["sigma", "mean"]),
@@ -90,8 +94,20 @@ def _warm() -> None:
 
 
 def _mcmc(n_side: int = 30) -> None:
+    """Time the reference engineer's MCMC sampler and fit_car on the same simulated 900-area data.
+
+    The sampler's library is not an areamap dependency. It is imported in this process when
+    available; otherwise, if the environment variable AREAMAP_MCMC_PYTHON names a Python that has it
+    (e.g. /work/refenv/bin/python), the sampler runs there in a subprocess.
+    """
     import importlib.util
+    import os
     from pathlib import Path
+
+    import numpy as np
+
+    from areamap.graphs import AreaGraph
+    from areamap.models import fit_car
 
     path = Path(__file__).with_name("_mcmc_reference.py")
     if not path.exists():
@@ -99,31 +115,34 @@ def _mcmc(n_side: int = 30) -> None:
         return
     spec = importlib.util.spec_from_file_location("_mcmc_reference", path)
     mod = importlib.util.module_from_spec(spec)
-    try:
-        spec.loader.exec_module(mod)
-    except ImportError as exc:
-        print(f"MCMC comparison skipped: {exc}. Install the probabilistic-programming library named in "
-              "benchmarks/_mcmc_reference.py and rerun with --mcmc.")
-        return
-    from areamap.models import fit_car
-
-    g = queen_grid(n_side, n_side)
-    y, e, x = simulate(g)
+    spec.loader.exec_module(mod)
+    data = mod.simulate_grid_data(n_side=n_side, seed=0)
+    n = data["adjacency"].shape[0]
+    g = AreaGraph.from_adjacency([f"a{i}" for i in range(n)], data["adjacency"])
     t0 = time.perf_counter()
-    fit_car(y, e, g, covariates=x)
+    fit_car(np.asarray(data["observed"], float), np.asarray(data["expected"], float), g,
+            covariates=np.asarray(data["covariates"], float))
     t_fit = time.perf_counter() - t0
-    runner = getattr(mod, "time_bym2", None) or getattr(mod, "run", None)
-    if runner is None:
-        print("MCMC comparison skipped: _mcmc_reference.py has no time_bym2(...) or run(...) function.")
-        return
     try:
-        t_mcmc = runner(y=y, expected=e, graph=g, covariates=x)
-    except Exception as exc:  # noqa: BLE001 - report whatever the optional backend raised
-        print(f"MCMC comparison skipped: the sampler failed ({type(exc).__name__}: {exc}).")
-        return
-    if isinstance(t_mcmc, dict):
-        t_mcmc = t_mcmc.get("seconds", t_mcmc.get("time_s"))
-    print(f"{g.n} areas: fit_car {t_fit:.2f} s, MCMC {float(t_mcmc):.1f} s, ratio {float(t_mcmc) / t_fit:.0f}x")
+        res = mod.time_mcmc_bym2(n_side=n_side, seed=0)
+    except ImportError:
+        other = os.environ.get("AREAMAP_MCMC_PYTHON")
+        if not other:
+            print(f"MCMC comparison skipped: the sampler's library is not installed here. fit_car took "
+                  f"{t_fit:.2f} s on {n} areas. To compare, set AREAMAP_MCMC_PYTHON to a Python with "
+                  "numpyro and jax (see benchmarks/_mcmc_reference.py) and rerun with --mcmc.")
+            return
+        code = ("import json, sys; sys.path.insert(0, sys.argv[1]); import _mcmc_reference as m; "
+                f"r = m.time_mcmc_bym2(n_side={n_side}, seed=0); "
+                "print(json.dumps({k: r[k] for k in ('seconds', 'ess_min')}))")
+        out = subprocess.run([other, "-c", code, str(path.parent)], capture_output=True, text=True)
+        if out.returncode != 0:
+            print(f"MCMC comparison skipped: the sampler failed in {other}:\n{out.stderr[-1500:]}")
+            return
+        res = json.loads(out.stdout.strip().splitlines()[-1])
+    t_mcmc = float(res["seconds"])
+    print(f"{n} areas: fit_car {t_fit:.2f} s, MCMC (NUTS, min bulk ESS {float(res['ess_min']):.0f}) "
+          f"{t_mcmc:.1f} s, ratio {t_mcmc / t_fit:.0f}x")
 
 
 def main(argv=None) -> int:
@@ -140,7 +159,7 @@ def main(argv=None) -> int:
         _child(args.child)
         return 0
     subprocess.run([sys.executable, __file__, "--warm"], check=True)
-    print(f"{'areas':>8} {'fit s':>8} {'target s':>8} {'ratio':>6} {'peak MB':>8} {'mem ratio':>9} "
+    print(f"{'areas':>8} {'fit s':>8} {'cpu s':>8} {'target s':>8} {'ratio':>6} {'peak MB':>8} {'mem ratio':>9} "
           f"{'points':>6} {'evals':>6}")
     for n in [int(s) for s in args.sizes.split(",") if s]:
         out = subprocess.run([sys.executable, __file__, "--child", str(n)], capture_output=True, text=True)
@@ -149,7 +168,7 @@ def main(argv=None) -> int:
             continue
         r = json.loads(out.stdout.strip().splitlines()[-1])
         tgt = TARGETS.get(n, float("nan"))
-        print(f"{r['n']:>8} {r['fit_s']:>8.2f} {tgt:>8.0f} {r['fit_s'] / tgt:>6.2f} {r['peak_mb']:>8.0f} "
+        print(f"{r['n']:>8} {r['fit_s']:>8.2f} {r['cpu_s']:>8.2f} {tgt:>8.0f} {r['fit_s'] / tgt:>6.2f} {r['peak_mb']:>8.0f} "
               f"{r['peak_mb'] / MEMORY_LIMIT_MB:>9.2f} {r['design_points']:>6} {r['laplace_evaluations']:>6}"
               f"   (sigma {r['sigma']:.3f}, phi {r['phi']:.3f}, coef {r['coef']})")
     if args.mcmc:

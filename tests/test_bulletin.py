@@ -158,6 +158,12 @@ def _folder_hashes(folder: Path) -> dict[str, str]:
     return {p.name: _sha(p) for p in sorted(Path(folder).iterdir()) if p.is_file()}
 
 
+def cfg_permutations(config) -> int:
+    from areamap.config import load_config
+
+    return load_config(config).clusters.permutations
+
+
 @pytest.fixture(scope="module")
 def demo_run(tmp_path_factory):
     """The invented demo region, bulletins for 2026-W46 then 2026-W47 (the demo's last two weeks)."""
@@ -279,8 +285,9 @@ def test_morans_i_equals_direct_recomputation(demo_run):
     # the table carries 10 significant digits: agreement to 1e-6 relative is far tighter than any real difference
     np.testing.assert_allclose(run["morans_i"]["statistic"], expected_i, rtol=1e-6)
     np.testing.assert_allclose(run["morans_i"]["expected"], -1 / (n - 1), rtol=1e-12)  # E[I] = -1/(n-1)
-    assert run["morans_i"]["permutations"] == 999
-    assert 1 / 1000 <= run["morans_i"]["p_value"] <= 1  # a permutation p-value is at least 1/(R+1)
+    r = run["morans_i"]["permutations"]
+    assert r == cfg_permutations(demo_run["config"])
+    assert 1 / (r + 1) <= run["morans_i"]["p_value"] <= 1  # a permutation p-value is at least 1/(R+1)
 
 
 @pytest.mark.slow

@@ -35,9 +35,9 @@ def write(folder: Path, extra: str = "", *, base: str = MINIMAL, name: str = "ru
 
 
 def test_minimal_config_fills_agreed_defaults(folder):
-    # Defaults agreed between modules (the shared interface note): permutations 999, alpha 0.05, ...
+    # Defaults: permutations 9999 (enough resolution for FDR over a few thousand areas), alpha 0.05, ...
     cfg = load_config(write(folder))
-    assert cfg.clusters.permutations == 999
+    assert cfg.clusters.permutations == 9999
     assert cfg.clusters.alpha == 0.05
     assert cfg.clusters.adjust == "fdr"
     assert cfg.clusters.statistic == "local_moran"

@@ -114,17 +114,19 @@ def test_nc_matches_mcmc_reference(nc_fits, key, prefix):
     ],
 )
 def test_nc_hyperparameters_match_reference(nc_fits, key, prefix, params):
-    """Hyperparameter posterior means within 0.03 and quantiles within 0.05 of the NUTS reference.
+    """Hyperparameter posterior means within 0.01 and quantiles within 0.02 of the NUTS reference.
 
-    0.03 on means is ~ 1/8 of the posterior sd of phi/rho (0.17-0.26) and 40 % of the sd of sigma;
-    the 2.5 % quantile of phi near 0 and the 97.5 % near 1 are the least accurate (0.05).
+    0.01 on means is ~ 1/20 of the posterior sd of phi/rho (0.17-0.26) and ~ 1/7 of the sd of
+    sigma; MCMC error of these means is < 0.002 (convergence.txt). Quantiles come from an
+    interpolated log posterior over the design, hence 0.02 (the 2.5 % quantile of sigma in the
+    covariate model is the hardest: about 0.011 off).
     """
     ref = _ref(f"{prefix}_hyper.csv").set_index("parameter")
     fit = nc_fits(key)
     for p in params:
-        assert abs(fit.hyperparameters.loc[p, "mean"] - ref.loc[p, "mean"]) < 0.03
+        assert abs(fit.hyperparameters.loc[p, "mean"] - ref.loc[p, "mean"]) < 0.01
         for q in ("q025", "q50", "q975"):
-            assert abs(fit.hyperparameters.loc[p, q] - ref.loc[p, q]) < 0.05
+            assert abs(fit.hyperparameters.loc[p, q] - ref.loc[p, q]) < 0.02
     # intercept (and covariate) posterior means, within 0.01 on the log scale (sd ~0.06)
     if "nc_leroux" not in prefix:
         assert abs(fit.coefficients.loc["intercept", "mean"] - ref.loc["beta0", "mean"]) < 0.01
@@ -166,7 +168,7 @@ def test_scaled_structure_has_unit_geometric_mean_variance(graph_fn):
     assert_allclose(gs.log_pdet_scaled, np.sum(np.log(lam)), rtol=1e-10)
 
 
-def test_scaling_is_per_component(graph_with_island):
+def test_scaling_is_per_component():
     """Two components of size >= 2 and an island: each component scaled on its own (dense pinv)."""
     g = AreaGraph.from_edges(list("ABCDEFG"), [("A", "B"), ("B", "C"), ("D", "E"), ("E", "F"), ("F", "D")])
     gs = eng._GraphStructure(g.adjacency)
@@ -333,6 +335,18 @@ def test_island_gets_unstructured_effect_bym2(graph_with_island):
     # toward neighbours it does not have; it stays clearly above 1.
     assert fit.p_above_1[4] > 0.9
     assert any("island" in n for n in fit.notes)
+
+
+def test_graph_without_links_gives_independent_effects():
+    """No links: BYM2 is an independent random-effects Poisson model; said in the notes."""
+    g = AreaGraph.from_edges(list("ABCDEF"), [])
+    fit = fit_car([1, 5, 2, 8, 0, 3], [2.0, 3.0, 2.5, 3.0, 1.0, 2.0], g)
+    assert any("no neighbour links" in n for n in fit.notes)
+    # exchangeable random effects shrink the spread of the ratios (common practice), and with equal
+    # expected counts (B and D) the larger count keeps the larger smoothed ratio
+    raw = np.array([1, 5, 2, 8, 0, 3.0]) / np.array([2.0, 3.0, 2.5, 3.0, 1.0, 2.0])
+    assert np.ptp(fit.rr_median) < np.ptp(raw)
+    assert fit.rr_median[3] > fit.rr_median[1]
 
 
 def test_icar_warns_about_islands(graph_with_island):
