@@ -42,7 +42,8 @@ import numpy as np
 import pandas as pd
 
 from ._params import check_interval, check_positive_int
-from .errors import ArchiveError, format_examples
+from .errors import ArchiveError, ParameterError, format_examples
+from .intake import parse_week, week_bounds, weeks_ending
 
 __all__ = ["HistoryArchive", "FlagChanges", "SCHEMA_VERSION", "ARCHIVE_COLUMNS"]
 
@@ -96,25 +97,18 @@ CREATE INDEX IF NOT EXISTS area_results_area ON area_results(area_id, period);
 
 
 # ----------------------------------------------------------------------------- ISO weeks
-def _parse_week(period: str) -> _dt.date:
-    """Monday of an ISO week key ``'YYYY-Www'``; ArchiveError when malformed."""
-    text = str(period).strip()
+def _week_key(period: str) -> str:
+    """Canonical ISO week key ``'YYYY-Www'``; ArchiveError when malformed."""
     try:
-        year_s, week_s = text.split("-W")
-        return _dt.date.fromisocalendar(int(year_s), int(week_s), 1)
-    except ValueError:
+        return parse_week(period)
+    except ParameterError:
         raise ArchiveError(
             f"Archive period keys are ISO weeks such as '2026-W47'. Got {period!r} instead."
         ) from None
 
 
-def _week_key(monday: _dt.date) -> str:
-    year, week, _ = monday.isocalendar()
-    return f"{year:04d}-W{week:02d}"
-
-
 def _previous_week(period: str) -> str:
-    return _week_key(_parse_week(period) - _dt.timedelta(days=7))
+    return weeks_ending(period, 2)[0]
 
 
 # ----------------------------------------------------------------------------- results
@@ -338,8 +332,8 @@ class HistoryArchive:
             If the archive is locked longer than ``timeout``, damaged, from an
             incompatible version, or ``results`` repeats area ids or lacks ``flag``.
         """
-        monday = _parse_week(period)
-        key = _week_key(monday)
+        key = _week_key(period)
+        monday = week_bounds(key)[0]
         window_weeks = check_positive_int(window_weeks, "window_weeks", "HistoryArchive.write_period")
         if "flag" not in results.columns:
             raise ArchiveError("Results written to the archive need a 'flag' column (True/False).")
@@ -398,7 +392,7 @@ class HistoryArchive:
 
     def read_period(self, period: str) -> pd.DataFrame:
         """One period's per-area results (index ``area_id``); empty frame when not archived."""
-        key = _week_key(_parse_week(period))
+        key = _week_key(period)
         with self._reading() as con:
             if con is None or not _has_tables(con):
                 return _empty_results()
@@ -490,7 +484,7 @@ class HistoryArchive:
         missing from the archive breaks a run: the count restarts, because an
         unarchived week cannot be known to have been flagged.
         """
-        key = _week_key(_parse_week(period))
+        key = _week_key(period)
         prev = _previous_week(key)
         current = pd.Series(np.asarray(flags, dtype=bool), index=flags.index.astype(str))
         # runs[area] = consecutive flagged weeks ending at `prev`, from the archive

@@ -74,7 +74,6 @@ def _simulated(graph: AreaGraph, seed: int = 1, scale: float = 20.0):
 
 
 # ========================================================= reference accuracy
-@pytest.mark.slow
 @pytest.mark.parametrize(
     "key, prefix",
     [
@@ -104,7 +103,6 @@ def test_nc_matches_mcmc_reference(nc_fits, key, prefix):
         assert_allclose(getattr(fit, mine), ref[theirs].to_numpy(), rtol=0.07)
 
 
-@pytest.mark.slow
 @pytest.mark.parametrize(
     "key, prefix, params",
     [
@@ -299,9 +297,9 @@ def test_two_fits_are_identical(grid5_queen):
 
 @pytest.mark.parametrize("model", ["bym2", "leroux", "icar"])
 def test_reordering_areas_gives_same_results(grid5_queen, model):
-    """Shuffling the areas (graph.reorder + data) leaves per-area results unchanged. Floating-point
-    order of operations differs (another elimination order), and the hyperparameter optimiser
-    stops at gradient tolerance 1e-6; 1e-6 relative bounds both."""
+    """Shuffling the areas (graph.reorder + data) leaves per-area results unchanged. Only the
+    floating-point order of operations differs (another elimination order); observed differences
+    are ~1e-11, so 1e-8 relative leaves room for other BLAS/CPU builds."""
     y, e, _ = _simulated(grid5_queen, seed=3)
     ids = grid5_queen.ids
     perm = np.random.default_rng(11).permutation(grid5_queen.n)
@@ -312,7 +310,7 @@ def test_reordering_areas_gives_same_results(grid5_queen, model):
     b = fit_car(obs.iloc[perm], exp_.iloc[perm], g2, model=model).to_frame()
     assert list(b.index) == list(ids[perm])
     cols = ["rr_mean", "rr_sd", "rr_median", "rr_low", "rr_high", "p_above_1", "predictive_midp"]
-    assert_allclose(b.loc[ids, cols].to_numpy(), a[cols].to_numpy(), rtol=1e-6, atol=1e-9)
+    assert_allclose(b.loc[ids, cols].to_numpy(), a[cols].to_numpy(), rtol=1e-8, atol=1e-12)
 
 
 def test_series_input_follows_data_order(grid5_rook):
