@@ -17,6 +17,8 @@ from .autocorrelation import (
     rate_local_clusters,
     rate_morans_i,
 )
+from .archive import FlagChanges, HistoryArchive
+from .bulletin import BulletinResult, FlagRules, file_sha256, flag_areas, run_bulletin, suppress_counts
 from .config import RunConfig, load_config
 from .demo import write_demo
 from .errors import (
@@ -69,6 +71,7 @@ from .maps import (
     relative_risk_breaks,
     shrinkage_plot,
 )
+from .models import CarFit, CarPriors, fit_car
 from .rates import (
     DirectRateResult,
     RateResult,
@@ -118,4 +121,9 @@ __all__ = [
     "CAUTION_TEXT", "CLUSTER_COLOURS", "Classification", "classify", "natural_breaks", "relative_risk_breaks",
     "choropleth", "raw_beside_smoothed", "bivariate_map", "exceedance_map", "cluster_map", "funnel_limits",
     "funnel_plot", "moran_scatterplot", "shrinkage_plot", "ranked_interval_plot", "add_map_furniture",
+    # CAR models
+    "CarPriors", "CarFit", "fit_car",
+    # bulletin and history
+    "run_bulletin", "BulletinResult", "FlagRules", "flag_areas", "suppress_counts", "file_sha256",
+    "HistoryArchive", "FlagChanges",
 ]
