@@ -38,6 +38,8 @@ PC_NODES = 48
 #: range of logit(phi) covered by the interpolated PC prior
 PC_S_RANGE = (-9.0, 12.0)
 _LOGIT_BOUND = 12.0
+#: number of recent latent modes kept as warm starts during the hyperparameter search
+ANCHORS = 6
 #: ridge added to the scaled ICAR precision (see _LatentModel)
 U_RIDGE = 1e-7
 
@@ -437,11 +439,15 @@ class _LatentModel:
                     "counts or expected counts; rescaling the covariates or dropping constant ones helps."
                 )
             grad = bt @ (y - mu) - qp @ x
-            d = self.chol.solve(grad)
             if k:
-                wcon = self.chol.solve(self._acon_t)  # m x k
+                # one pass over L for the gradient and the constraint columns
+                sol = self.chol.solve(np.column_stack([grad, self._acon_t]))
+                d = sol[:, 0]
+                wcon = sol[:, 1:]  # m x k
                 gmat = np.asarray(acon @ wcon)
                 d = d - np.einsum("ik,k->i", wcon, np.linalg.solve(gmat, acon @ d))
+            else:
+                d = self.chol.solve(grad)
             step = 1.0
             while True:
                 f_new, eta_new = objective(x + step * d)
@@ -462,7 +468,62 @@ class _LatentModel:
             )
         return x, eta, it, wcon, gmat
 
-    def laplace(self, theta, x0=None, *, marginals=False, max_iter=60, tol=1e-7) -> _LaplaceResult:
+    def _log_density(self, xx, qp, bmat, e):
+        """Log density (up to a constant) of the latent field given y, as in :meth:`_newton`."""
+        eta = np.clip(bmat @ xx, -60.0, 60.0)
+        return float(np.sum(self.y * eta - e * np.exp(eta)) - 0.5 * _dot(xx, qp @ xx))
+
+    def _tangent(self, theta, x, eta, qp, bt, wcon, gmat):
+        """Derivative dx*/dθ (m x d) of the constrained mode, by the implicit function theorem.
+
+        At the mode the gradient g(x, θ) = Bᵀ(y − μ) − Q_prior x vanishes on the constraint
+        subspace, so Q dx*/dθ_j = ∂g/∂θ_j (constrained solve with the factorization of the last
+        Newton iteration). Used only to predict the starting point of the next evaluation.
+        """
+        n = self.n
+        mu = self.e * np.exp(eta)
+        resid = self.y - mu
+        cols = []
+        if self.kind == "leroux":
+            xb = x[:n]
+            qbx = (qp @ x)[:n]
+            tau = np.exp(-2.0 * theta[0])
+            rho = _expit(np.clip(theta[1], -_LOGIT_BOUND, _LOGIT_BOUND))
+            drho = rho * (1.0 - rho) if abs(theta[1]) < _LOGIT_BOUND else 0.0
+            c0 = np.zeros(self.m)
+            c0[:n] = 2.0 * qbx  # ∂Q_b/∂θ_0 = −2 Q_b
+            c1 = np.zeros(self.m)
+            c1[:n] = -tau * drho * (self._lap @ xb - xb)  # ∂Q_b/∂ρ = τ (R − I)
+            cols = [c0, c1]
+        else:
+            gs = self.g
+            ns = gs.n_structured
+            sigma = np.exp(theta[0])
+            av, au = self._coefficients(theta)
+            derivs = [(av, au)]  # ∂a/∂ log σ = a
+            if self.kind == "bym2":
+                phi = _expit(np.clip(theta[1], -_LOGIT_BOUND, _LOGIT_BOUND))
+                dphi = phi * (1.0 - phi) if abs(theta[1]) < _LOGIT_BOUND else 0.0
+                dav = np.zeros(n)
+                dav[gs.structured] = -0.5 * sigma * dphi / np.sqrt(max(1.0 - phi, 1e-300))
+                dau = 0.5 * sigma * dphi / np.sqrt(max(phi, 1e-300))
+                derivs.append((dav, dau))
+            xv = x[:n]
+            xu = x[n: n + ns]
+            for dav, dau in derivs:
+                deta = dav * xv
+                deta[gs.structured] += dau * xu
+                c = -(bt @ (mu * deta))
+                c[:n] += dav * resid
+                c[n: n + ns] += dau * resid[gs.structured]
+                cols.append(c)
+        t = self.chol.solve(np.column_stack(cols))
+        if self.k_con:
+            t = t - wcon @ np.linalg.solve(gmat, self.a_con @ t)
+        return t
+
+    def laplace(self, theta, x0=None, *, marginals=False, max_iter=60, tol=1e-7,
+                tangent=False) -> _LaplaceResult:
         theta = np.asarray(theta, float)
         if self.kind == "leroux":
             qp, ld_prior = self._leroux_prior(theta)
@@ -477,12 +538,21 @@ class _LatentModel:
             x = np.zeros(self.m)
             x[self.i_beta[0]] = np.log(y.sum() / e.sum())
         else:
-            x0, theta_old = x0
+            x0, theta_old, *rest = x0
             x = x0.copy()
             if self.kind != "leroux":
                 # keep the area effects b (not the standardized v, u) from the warm start
                 x[: self.i_beta[0]] *= np.exp(theta_old[0] - theta[0])
+            if rest and rest[0] is not None:
+                # first-order prediction of the new mode along the tangent dx*/dθ of the old one;
+                # kept only if it is the better start (higher log density: for a concave
+                # objective that is the start closer to the mode in the Q-norm)
+                xt = x0 + mix(rest[0], theta - theta_old)
+                if self._log_density(xt, qp, bmat, e) > self._log_density(x, qp, bmat, e):
+                    x = xt
         x, eta, it, wcon, gmat = self._newton(x, qp, bmat, bt, e, theta, max_iter, tol)
+        if tangent:
+            res_tangent = self._tangent(theta, x, eta, qp, bt, wcon, gmat)
         k = self.k_con
         # log p(y | theta) by Laplace; constants of the restricted Gaussian densities cancel
         loglik = float(np.sum(y * (self.log_e + eta) - e * np.exp(eta) - gammaln(y + 1.0)))
@@ -492,6 +562,8 @@ class _LatentModel:
             ld_post += float(np.linalg.slogdet(gmat)[1]) - self.log_det_aat
         logml = loglik - 0.5 * quad + 0.5 * ld_prior - 0.5 * ld_post
         res = _LaplaceResult(theta=theta, x=x, log_marginal=logml, iterations=it)
+        if tangent:
+            res.extra["tangent"] = res_tangent
         if marginals:
             self._marginals(res, bmat, wcon, gmat)
             # Variational mean correction: with the Laplace covariance fixed, the mean m of the
@@ -570,17 +642,27 @@ def integrate_hyperparameters(log_prior, latent: _LatentModel, theta0, bounds, *
     cache = {}
     state = {"x": None, "theta": None, "count": 0}
     latent.stats = state
+    # recent latent modes with their tangents dx*/dθ; each evaluation starts from a first-order
+    # prediction off the nearest one (finite-difference neighbours then need one Newton step less)
+    anchors = []
 
     def evaluate(theta, marginals=False):
         key = tuple(np.round(np.asarray(theta, float), 12))
         hit = cache.get(key)
         if hit is not None and (not marginals or hit[1].mean_eta is not None):
             return hit
-        warm = None if state["x"] is None else (state["x"], state["theta"])
-        res = latent.laplace(np.asarray(theta, float), warm, marginals=marginals)
+        th = np.asarray(theta, float)
+        if anchors:
+            dist = [float(np.sum((a[1] - th) ** 2)) for a in anchors]
+            warm = anchors[int(np.argmin(dist))]
+        else:
+            warm = None if state["x"] is None else (state["x"], state["theta"])
+        res = latent.laplace(th, warm, marginals=marginals, tangent=True)
         state["count"] += 1
         state.setdefault("iters", []).append(res.iterations)
         state["x"], state["theta"] = res.x, res.theta  # warm start for the next evaluation
+        anchors.insert(0, (res.x, res.theta, res.extra.pop("tangent")))
+        del anchors[ANCHORS:]
         lp = res.log_marginal + float(log_prior(np.asarray(theta, float)))
         cache[key] = (lp, res)
         return lp, res

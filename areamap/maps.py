@@ -1050,6 +1050,16 @@ def funnel_limits(expected, *, level: float = 0.95, interpolate: bool = True) ->
     return out[0], out[1]
 
 
+
+def _plain_log_ticks(axis) -> None:
+    """Label a log-scaled axis with plain numbers (0.5, 1, 2) instead of powers of ten."""
+    from matplotlib.ticker import FuncFormatter, LogLocator
+
+    fmt = FuncFormatter(lambda v, _pos: f"{v:g}")
+    axis.set_major_locator(LogLocator(base=10, subs=(1.0, 2.0, 5.0)))
+    axis.set_major_formatter(fmt)
+    axis.set_minor_formatter(FuncFormatter(lambda _v, _pos: ""))
+
 def funnel_plot(
     observed,
     expected,
@@ -1144,6 +1154,7 @@ def funnel_plot(
         ax.annotate(_plain(nm), (x, y), xytext=(4, 3), textcoords="offset points", fontsize=7, gid="funnel-label")
     if log_x:
         ax.set_xscale("log")
+        _plain_log_ticks(ax.xaxis)
     ax.set_xlabel("Expected count")
     ax.set_ylabel("Standardized ratio (observed / expected)")
     # The limits explode as E -> 0; scale the axis to the points, not to the limits at tiny E.
@@ -1306,6 +1317,8 @@ def shrinkage_plot(
     if log:
         ax.set_xscale("log")
         ax.set_yscale("log")
+        _plain_log_ticks(ax.xaxis)
+        _plain_log_ticks(ax.yaxis)
     ax.set_xlabel("Raw standardized ratio")
     ax.set_ylabel("Smoothed relative risk")
     ax.legend(loc="upper left", fontsize=8, frameon=False)
@@ -1383,6 +1396,7 @@ def ranked_interval_plot(
     ax.axhline(reference, color="#333333", linewidth=0.9, linestyle="dashed", gid="reference-line")
     if log:
         ax.set_yscale("log")
+        _plain_log_ticks(ax.yaxis)
     if est.size <= 40:
         ax.set_xticks(xs, [_plain(n) for n in names], rotation=90, fontsize=7)
     else:
