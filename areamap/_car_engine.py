@@ -12,7 +12,8 @@ Pieces, in the order a fit uses them:
 * :meth:`_LatentModel.laplace` -- for fixed hyperparameters, Newton iterations for
   the mode of x with the constraints imposed by conditioning ("kriging"), the
   Laplace approximation of log p(y | θ), and (on request) the marginal means and
-  variances of the log relative risks from the selected inverse.
+  variances of the log relative risks from the selected inverse and the tangent
+  dx*/dθ of the mode (warm start of the next evaluation).
 * :func:`integrate_hyperparameters` -- mode of log p(θ | y), numerical Hessian,
   a grid of θ points with weights (integrated nested Laplace approximation).
 """

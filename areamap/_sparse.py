@@ -6,7 +6,8 @@ module provides a small, deterministic one compiled with numba:
 * a fill-reducing ordering computed once per sparsity pattern (the multiple
   minimum degree ordering of SuperLU, taken from ``scipy.sparse.linalg.splu``
   on the pattern of A + Aᵀ; it is only used as an ordering);
-* the elimination tree and the pattern of the factor L (symbolic phase, once);
+* the elimination tree, the pattern of the factor L and its row patterns (symbolic
+  phase, once);
 * an up-looking numeric factorization A = L Lᵀ that reuses the symbolic phase
   for every new set of values with the same (or a smaller) pattern;
 * triangular solves, log-determinant, and the selected inverse: the elements of
@@ -126,6 +127,58 @@ def _numeric(n, ap, ai, ax, parent, lp, li, lx):  # pragma: no cover - compiled
             return k
         lx[c[k]] = np.sqrt(d)
         c[k] += 1
+    return -1
+
+
+@nb.njit(cache=True)
+def _row_patterns(n, ap, ai, parent, lp):  # pragma: no cover - compiled
+    """Row patterns of L below the diagonal, in the topological order of :func:`_ereach`.
+
+    ``rc[rp[k]:rp[k+1]]`` are the columns i < k with L[k, i] != 0 and ``rpos`` the position
+    of L[k, i] in the column-wise storage of L (symbolic phase, computed once).
+    """
+    rp = np.zeros(n + 1, np.int64)
+    rc = np.empty(lp[n] - n, np.int64)
+    rpos = np.empty(lp[n] - n, np.int64)
+    s = np.empty(n, np.int64)
+    w = np.full(n, -1, np.int64)
+    c = lp[:n] + 1
+    t0 = 0
+    for k in range(n):
+        top = _ereach(k, ap, ai, parent, s, w, n)
+        for t in range(top, n):
+            i = s[t]
+            rc[t0] = i
+            rpos[t0] = c[i]
+            c[i] += 1
+            t0 += 1
+        rp[k + 1] = t0
+    return rp, rc, rpos
+
+
+@nb.njit(cache=True)
+def _numeric_rows(n, ap, ai, ax, lp, li, rp, rc, rpos, lx):  # pragma: no cover - compiled
+    """Same arithmetic as :func:`_numeric` (bit-identical), with the row patterns precomputed."""
+    x = np.zeros(n)
+    for k in range(n):
+        x[k] = 0.0
+        for p in range(ap[k], ap[k + 1]):
+            if ai[p] <= k:
+                x[ai[p]] += ax[p]
+        d = x[k]
+        x[k] = 0.0
+        for t in range(rp[k], rp[k + 1]):
+            i = rc[t]
+            q = rpos[t]
+            lki = x[i] / lx[lp[i]]
+            x[i] = 0.0
+            for p in range(lp[i] + 1, q):
+                x[li[p]] -= lx[p] * lki
+            d -= lki * lki
+            lx[q] = lki
+        if not d > 0.0:
+            return k
+        lx[lp[k]] = np.sqrt(d)
     return -1
 
 
@@ -268,6 +321,8 @@ class SparseCholesky:
         self._ai = up.indices.astype(np.int64)
         self.parent = _etree(self.n, self._ap, self._ai)
         self.lp, self.li = _symbolic(self.n, self._ap, self._ai, self.parent)
+        # row patterns of L (the numeric factorizations then skip the elimination-tree walks)
+        self._rp, self._rc, self._rpos = _row_patterns(self.n, self._ap, self._ai, self.parent, self.lp)
         self.n_upper = int(self._ap[-1])
         self.lx: np.ndarray | None = None
 
@@ -285,8 +340,14 @@ class SparseCholesky:
         """Numeric factorization of ``a`` (same pattern as the analysed one); -1 on success."""
         up = self._permuted_upper(a)
         lx = np.zeros(self.nnz)
-        status = _numeric(self.n, up.indptr.astype(np.int64), up.indices.astype(np.int64),
-                          up.data.astype(np.float64), self.parent, self.lp, self.li, lx)
+        ap = up.indptr.astype(np.int64)
+        ai = up.indices.astype(np.int64)
+        if not (np.array_equal(ap, self._ap) and np.array_equal(ai, self._ai)):
+            # a smaller pattern than the analysed one: row patterns do not apply
+            status = _numeric(self.n, ap, ai, up.data.astype(np.float64), self.parent, self.lp, self.li, lx)
+        else:
+            status = _numeric_rows(self.n, ap, ai, up.data.astype(np.float64), self.lp, self.li,
+                                   self._rp, self._rc, self._rpos, lx)
         self.lx = lx
         return int(status)
 
@@ -305,7 +366,8 @@ class SparseCholesky:
     def factorize_data(self, data: np.ndarray) -> int:
         """Numeric factorization from values on the analysed pattern (order of :meth:`positions`)."""
         lx = np.zeros(self.nnz)
-        status = _numeric(self.n, self._ap, self._ai, data, self.parent, self.lp, self.li, lx)
+        status = _numeric_rows(self.n, self._ap, self._ai, data, self.lp, self.li,
+                               self._rp, self._rc, self._rpos, lx)
         self.lx = lx
         return int(status)
 

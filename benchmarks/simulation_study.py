@@ -22,7 +22,7 @@ Usage (keeps well under 10 minutes on 2 cores with the defaults)::
     .venv/bin/python benchmarks/simulation_study.py --markdown out.md
 
 Not part of the test suite: the numbers are Monte Carlo estimates and are recorded by hand, with date,
-machine and command, in docs/_parts/simulation-study.md.
+machine and command, in docs/performance.md.
 """
 
 from __future__ import annotations

@@ -209,4 +209,4 @@ def test_user_guide_documents_every_key():
     text = guide.read_text(encoding="utf-8")
     missing = [k for k in _all_keys(RunConfig) if f"`{k}`" not in text]
     assert not missing, f"keys not documented in {guide.name}: {missing}"
-    assert config_reference_table() in text, "regenerate the key table of guide-config.md from config_reference_table()"
+    assert config_reference_table() in text, "regenerate the key table of docs/user-guide.md from config_reference_table()"

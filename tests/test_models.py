@@ -206,7 +206,7 @@ def test_pc_prior_interpolation_matches_eigenvalues():
     eigenvalue form on a graph small enough for both (20 x 20 queen grid). Tolerances: 2e-4 in log
     density for phi in [0.0025, 0.9975] and 2e-3 for phi in [1.2e-4, 0.99988] (measured errors are
     about 5x smaller; a log-prior error of 1e-3 moves posterior probabilities by < 0.1 %).
-    See docs/_parts/methods-models.md."""
+    See docs/methods.md."""
     adj = grid_graph(20, 20, queen=True).adjacency
     exact = eng._GraphStructure(adj, pc_method="eigen")
     approx = eng._GraphStructure(adj, pc_method="interpolate")
