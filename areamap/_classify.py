@@ -613,8 +613,11 @@ def bivariate_colours() -> np.ndarray:
     Row ``r`` is the relative-risk class (0 low, 1 near the threshold, 2 high),
     column ``c`` the exceedance-probability class (0 low, 1 inconclusive, 2
     high). Hue shows the direction of the estimate (blue below, grey near,
-    orange above); darkness and strength of colour grow with the probability
-    that the risk exceeds the threshold, designed in CIELAB.
+    orange above); darkness and strength of colour grow with the evidence for
+    that direction: with the exceedance probability in the high and middle
+    rows, with one minus it in the low row (a low estimate with P(RR > c)
+    below 0.2 is the most certain low), so pale always means "uncertain".
+    Designed in CIELAB.
 
     Examples
     --------
@@ -626,6 +629,8 @@ def bivariate_colours() -> np.ndarray:
     hues = np.array([_DIVERGING_LAB[0, 1:], [0.0, 0.0], _DIVERGING_LAB[2, 1:]])
     norms = np.linalg.norm(hues, axis=1, keepdims=True)
     dirs = np.divide(hues, norms, out=np.zeros_like(hues), where=norms > 0)
-    lab = np.array([[[lightness[c], *(chroma[c] * dirs[r])] for c in range(3)] for r in range(3)])
+    # evidence level per cell: the low row reads the probability columns backwards
+    level = np.array([[2 - c if r == 0 else c for c in range(3)] for r in range(3)])
+    lab = np.array([[[lightness[level[r, c]], *(chroma[level[r, c]] * dirs[r])] for c in range(3)] for r in range(3)])
     rgb = _lab_to_rgb(lab.reshape(9, 3)).reshape(3, 3, 3)
     return np.concatenate([rgb, np.ones((3, 3, 1))], axis=2)

@@ -1102,6 +1102,14 @@ def _figures(areas, graph, local, cfg, key: str) -> tuple[list[dict], list[str]]
             "Map of the posterior probability that each district's relative risk exceeds 1.")
 
         fig, ax = plt.subplots(figsize=(7.5, 6.5), layout="constrained")
+        maps.bivariate_map(gdf, "rr", "p_above_1", ax=ax, period=period_text, source=source)
+        add("risk-and-certainty", fig, "Risk and certainty together",
+            "Each district's smoothed relative risk class (below 0.9, 0.9 to 1.1, above 1.1) crossed with how "
+            "sure the model is that its risk exceeds 1 (below 0.2, 0.2 to 0.8, above 0.8). Strong colours mean "
+            "a clear signal; pale colours mean the estimate is uncertain, whatever its size.",
+            "Map with a three-by-three colour legend crossing relative-risk class with exceedance-probability class.")
+
+        fig, ax = plt.subplots(figsize=(7.5, 6.5), layout="constrained")
         maps.cluster_map(gdf, "cluster", ax=ax, period=period_text, source=source)
         stat = "local Moran's I" if cfg.clusters.statistic == "local_moran" else "Getis–Ord Gi*"
         add("clusters", fig, "Local clusters",

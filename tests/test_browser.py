@@ -110,7 +110,7 @@ def test_every_image_decodes(page):
     driver, _, _ = page
     images = driver.execute_script(
         "return Array.from(document.images).map(i => [i.complete, i.naturalWidth, i.naturalHeight]);")
-    assert len(images) >= 4  # raw/smoothed maps, uncertainty map, cluster map, funnel plot
+    assert len(images) >= 5  # raw/smoothed maps, uncertainty map, risk-and-certainty map, cluster map, funnel plot
     assert all(done and w > 0 and h > 0 for done, w, h in images)
 
 

@@ -367,10 +367,12 @@ def test_bivariate_legend_has_nine_cells_with_right_colours(strip):
     for i, (r, c) in enumerate([(0, 0), (1, 1), (2, 2), (2, 0), (0, 2)]):
         np.testing.assert_allclose(face[i], grid[r, c], atol=1e-6)
     assert len(_collection(ax, "missing").get_paths()) == 1
-    # nine distinct colours; darkness grows with the exceedance probability in every risk row
+    # nine distinct colours; darkness grows with the evidence for the estimate's direction:
+    # with P(RR > c) in the middle and high rows, with 1 - P(RR > c) in the low row
     assert len({tuple(np.round(v, 4)) for v in grid.reshape(9, 4)}) == 9
     lightness = _srgb_to_lab(grid)[..., 0]
-    assert np.all(np.diff(lightness, axis=1) < -10)
+    assert np.all(np.diff(lightness[1:], axis=1) < -10)
+    assert np.all(np.diff(lightness[0], axis=0) > 10)
 
 
 def test_exceedance_map_marks_richardson_bands(strip):
