@@ -423,8 +423,6 @@ def morans_i(
         - b2 * ((n * n - n) * s1 - 2 * n * s2 + 6 * s0 * s0)
     ) / ((n - 1) * (n - 2) * (n - 3) * s0 * s0)
     var_r = e_i2 - expected**2
-    z_n = (observed - expected) / math.sqrt(var_n) if var_n > 0 else math.nan
-    z_r = (observed - expected) / math.sqrt(var_r) if var_r > 0 else math.nan
 
     wt = sp.csr_array(w.T)
 
@@ -432,25 +430,8 @@ def morans_i(
         lag = (wt @ zp.T).T  # row r: (W z_r) since (W z)^T = z^T W^T
         return n / s0 * np.einsum("ij,ij->i", zp, lag) / m2sum
 
-    p_perm, mean, sd = _global_permutation(z, kernel, observed, expected, permutations, seed, block_size)
-    return GlobalAutocorrelation(
-        statistic=observed,
-        expected=expected,
-        variance_normal=var_n,
-        z_normal=z_n,
-        p_normal=_two_sided(z_n),
-        variance_randomization=var_r,
-        z_randomization=z_r,
-        p_randomization=_two_sided(z_r),
-        permutations=permutations,
-        p_permutation=p_perm,
-        permutation_mean=mean,
-        permutation_sd=sd,
-        method="Moran's I",
-        n_areas=n,
-        n_islands=int(graph.island_mask().sum()),
-        weights=weights,
-    )
+    perm = _global_permutation(z, kernel, observed, expected, permutations, seed, block_size)
+    return _global_result("Moran's I", observed, expected, var_n, var_r, perm, permutations, graph, weights)
 
 
 def gearys_c(
@@ -527,11 +508,17 @@ def gearys_c(
         - 0.25 * (n - 1) * s2 * (n * n + 3 * n - 6 - (n * n - n + 2) * b2)
         + s0 * s0 * (n * n - 3 - (n - 1) ** 2 * b2)
     ) / (n * (n - 2) * (n - 3) * s0 * s0)
-    z_n = (observed - expected) / math.sqrt(var_n) if var_n > 0 else math.nan
-    z_r = (observed - expected) / math.sqrt(var_r) if var_r > 0 else math.nan
-    p_perm, mean, sd = _global_permutation(
+    perm = _global_permutation(
         z, lambda zp: scale * numerator(zp), observed, expected, permutations, seed, block_size
     )
+    return _global_result("Geary's C", observed, expected, var_n, var_r, perm, permutations, graph, weights)
+
+
+def _global_result(method, observed, expected, var_n, var_r, perm, permutations, graph, weights):
+    """Assemble a GlobalAutocorrelation from the statistic, its two analytic variances and the permutation test."""
+    z_n = (observed - expected) / math.sqrt(var_n) if var_n > 0 else math.nan
+    z_r = (observed - expected) / math.sqrt(var_r) if var_r > 0 else math.nan
+    p_perm, mean, sd = perm
     return GlobalAutocorrelation(
         statistic=observed,
         expected=expected,
@@ -545,8 +532,8 @@ def gearys_c(
         p_permutation=p_perm,
         permutation_mean=mean,
         permutation_sd=sd,
-        method="Geary's C",
-        n_areas=n,
+        method=method,
+        n_areas=graph.n,
         n_islands=int(graph.island_mask().sum()),
         weights=weights,
     )
