@@ -306,3 +306,144 @@ class _SpaceTimeLatent:
         res.beta_var = np.maximum(var_beta, 1e-300)
         res.extra["var_level"] = np.maximum(var_b, 1e-300)
         res.extra["var_trend"] = np.maximum(var_tr, 1e-300)
+
+
+# ============================================================== hyperparameters (large problems)
+def _quadratic_points(d, h):
+    """Centre, ±h e_i and h(e_i + e_j): the 1 + 2d + d(d-1)/2 points that fix a quadratic in d dims."""
+    pts = [np.zeros(d)]
+    for i in range(d):
+        for s in (1.0, -1.0):
+            z = np.zeros(d)
+            z[i] = s * h
+            pts.append(z)
+    for i in range(d):
+        for j in range(i + 1, d):
+            z = np.zeros(d)
+            z[i] = z[j] = h
+            pts.append(z)
+    return np.array(pts)
+
+
+def _fit_quadratic(z, f):
+    """Gradient and Hessian of the quadratic through the values f at the points z (rows)."""
+    d = z.shape[1]
+    cols = [np.ones(len(z))] + [z[:, i] for i in range(d)]
+    pairs = [(i, j) for i in range(d) for j in range(i, d)]
+    cols += [z[:, i] * z[:, j] * (0.5 if i == j else 1.0) for i, j in pairs]
+    coef = np.linalg.lstsq(np.column_stack(cols), f, rcond=None)[0]
+    grad = coef[1: 1 + d]
+    hess = np.zeros((d, d))
+    for c, (i, j) in zip(coef[1 + d:], pairs):
+        hess[i, j] = hess[j, i] = c
+    return grad, hess
+
+
+def fast_design(log_prior, latent, theta0, bounds, *, h=0.15, max_steps=8, tol=0.02):
+    """Mode of log p(θ | y) by Newton steps on local quadratic fits, then 2d + 1 axial points.
+
+    For large problems, where the hyperparameter posterior is concentrated and every
+    Laplace evaluation costs a sparse factorization of size n(W + 1): the first step fits
+    a full quadratic (1 + 2d + d(d−1)/2 evaluations), later steps reuse its Hessian and take
+    central-difference gradients (2d + 1 evaluations). The integration design is the mode
+    and ±1 standard deviation along each principal axis of the Gaussian fit at the mode,
+    weighted by the Laplace posterior density (equal volumes): a coarse grid restricted to
+    the axes, adequate when θ is well determined (documented in docs/methods.md).
+    """
+    d = len(theta0)
+    lo = np.array([b[0] for b in bounds])
+    hi = np.array([b[1] for b in bounds])
+    warm = [None]
+    count = [0]
+
+    def evaluate(theta, marginals=False):
+        res = latent.laplace(theta, warm[0], marginals=marginals)
+        count[0] += 1
+        warm[0] = (res.x, res.theta)
+        return res.log_marginal + float(log_prior(theta)), res
+
+    theta = np.clip(np.asarray(theta0, float), lo, hi)
+    f0, r0 = evaluate(theta)
+    hess = None
+    for step_no in range(max_steps):
+        centre = (r0.x, r0.theta)
+        if hess is None:
+            z = _quadratic_points(d, h)
+            vals = [f0]
+            for zz in z[1:]:
+                warm[0] = centre
+                vals.append(evaluate(theta + zz)[0])
+            grad, hess = _fit_quadratic(z, np.array(vals))
+        else:
+            grad = np.empty(d)
+            for i in range(d):
+                e = np.zeros(d)
+                e[i] = h
+                warm[0] = centre
+                fp = evaluate(np.clip(theta + e, lo - 1, hi + 1))[0]
+                warm[0] = centre
+                fm = evaluate(np.clip(theta - e, lo - 1, hi + 1))[0]
+                grad[i] = (fp - fm) / (2 * h)
+        ev, evec = np.linalg.eigh(-hess)
+        ev = np.maximum(ev, 1e-2)
+        step = evec @ ((evec.T @ grad) / ev)
+        big = np.max(np.abs(step))
+        if big > 1.0:
+            step = step / big
+        accepted = False
+        for _ in range(6):
+            cand = np.clip(theta + step, lo, hi)
+            warm[0] = centre
+            fc, rc = evaluate(cand)
+            if fc >= f0 - 1e-9:
+                accepted = True
+                break
+            step = step / 2.0
+        if not accepted:
+            break
+        moved = np.max(np.abs(cand - theta))
+        theta, f0, r0 = cand, fc, rc
+        if moved < tol:
+            break
+    edge = bool(np.any(np.abs(theta - lo) < 1e-3) or np.any(np.abs(theta - hi) < 1e-3))
+    ev, evec = np.linalg.eigh(-hess)
+    if np.any(ev <= 1e-8):
+        edge = True
+    ev = np.maximum(ev, 1e-2)
+    smat = evec / np.sqrt(ev)[None, :]
+    pts = [theta] + [theta + s * smat[:, j] for j in range(d) for s in (1.0, -1.0)]
+    lps, results = [], []
+    for p in pts:
+        warm[0] = (r0.x, r0.theta)
+        lp, res = evaluate(p, marginals=True)
+        lps.append(lp)
+        results.append(res)
+    lps = np.array(lps)
+    w = np.exp(lps - lps.max())
+    w /= w.sum()
+    log_ev = float(lps.max() + np.log(np.sum(np.exp(lps - lps.max()))) + np.log(abs(np.linalg.det(smat))))
+    return eng._Design(thetas=np.array(pts), log_post=lps, weights=w, results=results, mode=theta,
+                       scales=smat, stretch=np.ones((d, 2)), log_evidence=log_ev, n_evaluations=count[0],
+                       edge=edge)
+
+
+def reweight_design(design, log_prior, latent):
+    """Laplace fits of another data set (e.g. newest week missing) at the points of ``design``.
+
+    The points are kept and the weights multiplied by the ratio of the new to the old
+    posterior density at each point (importance reweighting of the integration design).
+    """
+    results, lps = [], []
+    warm = None
+    for th, res0 in zip(design.thetas, design.results):
+        res = latent.laplace(th, (res0.x, res0.theta) if warm is None else warm, marginals=True)
+        warm = (res.x, res.theta)
+        results.append(res)
+        lps.append(res.log_marginal + float(log_prior(th)))
+    lps = np.array(lps)
+    logw = np.log(np.maximum(design.weights, 1e-300)) + lps - design.log_post
+    w = np.exp(logw - logw.max())
+    w /= w.sum()
+    return eng._Design(thetas=design.thetas, log_post=lps, weights=w, results=results, mode=design.mode,
+                       scales=design.scales, stretch=design.stretch, log_evidence=np.nan,
+                       n_evaluations=len(results), edge=design.edge)

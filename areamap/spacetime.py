@@ -33,7 +33,7 @@ from scipy.special import gammaln, ndtr, pdtr, pdtrc
 
 from . import _car_engine as eng
 from ._params import check_choice, check_interval
-from ._spacetime_engine import _SpaceTimeLatent
+from ._spacetime_engine import _SpaceTimeLatent, fast_design, reweight_design
 from .autocorrelation import adjust_pvalues
 from .errors import InputError, format_examples
 from .graphs import AreaGraph
@@ -43,6 +43,8 @@ __all__ = ["SpaceTimePriors", "SpaceTimeFit", "fit_spacetime"]
 _TRENDS = ("rw1", "rw2")
 #: fewest weeks the space-time model accepts (the forecast needs one more week than that)
 MIN_WEEKS = 3
+#: above this many district-weeks the hyperparameters use the fast mode search and 2d + 1 axial points
+FAST_LIMIT = 20_000
 _GH_NODES, _GH_WEIGHTS = np.polynomial.hermite_e.hermegauss(16)
 _GH_WEIGHTS = _GH_WEIGHTS / _GH_WEIGHTS.sum()
 
@@ -363,11 +365,16 @@ def _log_prior_fn(gs, priors, fixed_phi):
     return lp
 
 
-def _fit_design(y, e, xs, gs, priors, trend):
+def _latent(y, e, xs, gs, priors, trend):
     fixed_phi = None if gs.n_structured else 0.0
-    latent = _SpaceTimeLatent(y, e, xs, gs, rw_order=1 if trend == "rw1" else 2,
-                              intercept_sd=priors.intercept_sd, coefficient_sd=priors.coefficient_sd,
-                              fixed_phi=fixed_phi)
+    return _SpaceTimeLatent(y, e, xs, gs, rw_order=1 if trend == "rw1" else 2,
+                            intercept_sd=priors.intercept_sd, coefficient_sd=priors.coefficient_sd,
+                            fixed_phi=fixed_phi)
+
+
+def _fit_design(y, e, xs, gs, priors, trend):
+    latent = _latent(y, e, xs, gs, priors, trend)
+    fixed_phi = latent.fixed_phi
     lam_s, lam_t, lam_d = priors.rates()
     raw = np.log((np.nan_to_num(y, nan=0.0) + 0.5) / e)
     fin = np.isfinite(y)
@@ -383,9 +390,12 @@ def _fit_design(y, e, xs, gs, priors, trend):
     else:
         theta0 = np.array([s0, t0, np.log(0.1)])
         bounds = [(lo[0], hi), (lo[1], hi), (lo[2], hi)]
-    design = eng.integrate_hyperparameters(_log_prior_fn(gs, priors, fixed_phi), latent, theta0, bounds,
-                                           strategy="gauss-hermite")
-    return design, latent
+    log_prior = _log_prior_fn(gs, priors, fixed_phi)
+    if y.size > FAST_LIMIT:
+        design = fast_design(log_prior, latent, theta0, bounds)
+    else:
+        design = eng.integrate_hyperparameters(log_prior, latent, theta0, bounds, strategy="gauss-hermite")
+    return design, latent, log_prior
 
 
 def _stack(design, key):
@@ -393,7 +403,15 @@ def _stack(design, key):
 
 
 def _hyper_table(design, latent):
-    pts, wts = eng.hyper_marginals(design, grid_step=0.25)
+    if len(design.results) >= 30:
+        pts, wts = eng.hyper_marginals(design, grid_step=0.25)
+    else:  # axial design: Gaussian approximation of log p(theta | y) at the mode
+        z, wz = np.polynomial.hermite_e.hermegauss(9)
+        d = design.mode.size
+        mesh = np.array(np.meshgrid(*([z] * d), indexing="ij")).reshape(d, -1).T
+        wts = np.prod(np.array(np.meshgrid(*([wz] * d), indexing="ij")).reshape(d, -1).T, axis=1)
+        wts = wts / wts.sum()
+        pts = design.mode + mesh @ design.scales.T
     full = np.array([latent.full_theta(p) for p in pts])
     rows = {
         "sigma_district": np.exp(full[:, 0]),
@@ -567,7 +585,7 @@ def fit_spacetime(
     gs = eng._GraphStructure(graph.adjacency)
     if gs.islands.size:
         notes.append(f"{gs.islands.size} island(s) carry only the unstructured district effect.")
-    design, latent = _fit_design(y, e, xs, gs, priors, trend)
+    design, latent, log_prior = _fit_design(y, e, xs, gs, priors, trend)
     if design.edge:
         eng.warn_edge("space-time")
         notes.append("Hyperparameter posterior reaches the edge of the integration design.")
@@ -594,7 +612,7 @@ def fit_spacetime(
         else:
             y_f = y.copy()
             y_f[:, -1] = np.nan
-            design_f, _ = _fit_design(y_f, e, xs, gs, priors, trend)
+            design_f = reweight_design(design, log_prior, _latent(y_f, e, xs, gs, priors, trend))
             designs["forecast"] = design_f
             muf = np.column_stack([r.mean_eta[last] for r in design_f.results])
             sdf = np.sqrt(np.column_stack([r.var_eta[last] for r in design_f.results]))
