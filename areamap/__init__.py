@@ -82,6 +82,7 @@ from .maps import (
     shrinkage_plot,
 )
 from .models import CarFit, CarPriors, fit_car
+from .spacetime import SpaceTimeFit, SpaceTimePriors, fit_spacetime
 from .rates import (
     DirectRateResult,
     RateResult,
@@ -133,6 +134,7 @@ __all__ = [
     "funnel_plot", "moran_scatterplot", "shrinkage_plot", "ranked_interval_plot", "add_map_furniture",
     # CAR models
     "CarPriors", "CarFit", "fit_car",
+    "SpaceTimePriors", "SpaceTimeFit", "fit_spacetime",
     # bulletin and history
     "analyse_period", "PeriodAnalysis", "render_bulletin", "run_bulletin", "BulletinResult", "FlagRules",
     "flag_areas", "suppress_counts", "file_sha256",

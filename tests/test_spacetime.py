@@ -1,0 +1,249 @@
+"""Tests of areamap.spacetime (space-time model, forecast check) and its engine."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+from numpy.testing import assert_allclose
+from scipy import stats
+
+from areamap import fit_spacetime, SpaceTimeFit, SpaceTimePriors
+from areamap._spacetime_engine import rw_structure
+from areamap.errors import InputError, ParameterError
+from areamap.graphs import AreaGraph
+from areamap.spacetime import _forecast
+
+from conftest import grid_graph
+
+REF = Path(__file__).parent / "reference"
+
+
+def _tables(n_rows=5, n_cols=5, weeks=6, seed=0, spike=None):
+    g = grid_graph(n_rows, n_cols)
+    ids = list(g.ids)
+    rng = np.random.default_rng(seed)
+    e = rng.uniform(2.0, 6.0, (len(ids), weeks))
+    rr = np.exp(rng.normal(0.0, 0.2, (len(ids), 1)) + np.linspace(-0.1, 0.1, weeks)[None, :])
+    if spike is not None:
+        rr[spike, -1] *= 8.0
+    y = rng.poisson(e * rr)
+    cols = pd.Index([f"2026-W{t + 1:02d}" for t in range(weeks)])
+    return pd.DataFrame(y, index=ids, columns=cols), pd.DataFrame(e, index=ids, columns=cols), g
+
+
+@pytest.fixture(scope="module")
+def small_fit():
+    y, e, g = _tables(spike=[12])
+    return fit_spacetime(y, e, g), y, e, g
+
+
+# ------------------------------------------------------------------ engine pieces
+@pytest.mark.parametrize("order", [1, 2])
+def test_rw_structure_scaling(order):
+    # Sørbye & Rue (2014): after scaling, the generalised inverse has diagonal with geometric mean 1
+    r, c = rw_structure(9, order)
+    d = np.diag(np.linalg.pinv(r))
+    assert_allclose(np.exp(np.mean(np.log(d))), 1.0, rtol=1e-10)  # exact identity up to rounding
+    # null space: constants (RW1) and linear trends (RW2) (Rue & Held 2005, ch. 3, from memory)
+    assert_allclose(r @ np.ones(9), 0.0, atol=1e-10)
+    if order == 2:
+        assert_allclose(r @ np.arange(9.0), 0.0, atol=1e-9)
+    assert np.linalg.matrix_rank(r) == 9 - order
+
+
+def test_rw1_structure_is_first_difference_penalty():
+    # RW1 structure matrix: tridiagonal with 1, 2, ..., 2, 1 on the diagonal and -1 beside it
+    # (Rue & Held 2005, eq. 3.22, from memory), up to the scaling constant
+    r, c = rw_structure(5, 1)
+    expected = np.diag([1.0, 2, 2, 2, 1]) - np.eye(5, k=1) - np.eye(5, k=-1)
+    assert_allclose(r / c, expected, atol=1e-12)
+
+
+def test_forecast_reduces_to_poisson_when_the_rate_is_known():
+    # with no posterior uncertainty the predictive is Poisson(E exp(mu)): scipy.stats.poisson
+    mu = np.log(np.array([[0.5], [2.0], [7.5], [20.0]]))
+    sd = np.full_like(mu, 1e-9)
+    e = np.array([1.0, 1.0, 2.0, 1.0])
+    y = np.array([0.0, 4.0, 9.0, 31.0])
+    mean, lo, hi, midp = _forecast(mu, sd, np.array([1.0]), e, y)
+    lam = e * np.exp(mu[:, 0])
+    assert_allclose(mean, lam, rtol=1e-8)
+    assert_allclose(lo, stats.poisson.ppf(0.025, lam))
+    assert_allclose(hi, stats.poisson.ppf(0.975, lam))
+    ref = stats.poisson.sf(y, lam) + 0.5 * stats.poisson.pmf(y, lam)
+    assert_allclose(midp, ref, rtol=1e-7)  # Gauss-Hermite nodes collapse onto one rate
+
+
+def test_forecast_midp_of_a_lognormal_mixture_matches_numerical_integration():
+    # P(Y > y) + 1/2 P(Y = y) for Y ~ Poisson(E e^eta), eta ~ N(m, s^2): scipy.integrate.quad reference
+    from scipy import integrate
+
+    m, s, e, y = 0.4, 0.35, 3.0, 8.0
+
+    def integrand(z):
+        lam = e * np.exp(m + s * z)
+        return (stats.poisson.sf(y, lam) + 0.5 * stats.poisson.pmf(y, lam)) * stats.norm.pdf(z)
+
+    ref = integrate.quad(integrand, -10, 10)[0]
+    _, _, _, midp = _forecast(np.array([[m]]), np.array([[s]]), np.array([1.0]), np.array([e]), np.array([y]))
+    assert_allclose(midp[0], ref, atol=2e-4)  # 16-node Gauss-Hermite rule
+
+
+# ------------------------------------------------------------------ result object
+def test_result_tables(small_fit):
+    fit, y, e, g = small_fit
+    assert isinstance(fit, SpaceTimeFit)
+    df = fit.to_frame()
+    assert list(df.index) == list(y.index)
+    assert {"rr_mean", "level", "forecast_mean", "forecast_midp", "emerging", "persistent"} <= set(df.columns)
+    wk = fit.week_table()
+    assert list(wk.index) == list(y.columns)
+    assert_allclose(wk["observed"], y.sum(axis=0).to_numpy())
+    long = fit.district_week_table()
+    assert long.shape[0] == y.size
+    assert np.all(long["rr_band_low"] <= long["rr_mean"])
+    assert np.all(fit.current_rr_low < fit.current_rr_high)
+    assert np.all(fit.forecast_low <= fit.forecast_high)
+    assert "Emerging" in fit.summary() and "sigma_trend" in fit.summary()
+    assert "<div>" in fit._repr_html_()
+    with pytest.raises(AttributeError):
+        fit.fdr = 0.1  # frozen
+
+
+def test_planted_spike_is_emerging_and_quiet_districts_are_not(small_fit):
+    fit, y, e, g = small_fit
+    assert fit.emerging[12]
+    assert fit.forecast_midp[12] < 0.001
+    # the newest count far above the forecast interval
+    assert y.iloc[12, -1] > fit.forecast_high[12]
+    assert fit.emerging.sum() <= 2
+
+
+def test_district_order_does_not_matter(small_fit):
+    fit, y, e, g = small_fit
+    perm = np.random.default_rng(5).permutation(len(y))
+    fit2 = fit_spacetime(y.iloc[perm], e.iloc[perm], g)
+    a = fit.to_frame().loc[fit2.ids]
+    b = fit2.to_frame()
+    # same model and data; only the order of the Laplace/optimiser arithmetic changes
+    assert_allclose(b["rr_mean"], a["rr_mean"], rtol=2e-3)
+    assert_allclose(b["forecast_midp"], a["forecast_midp"], atol=2e-3)
+
+
+def test_rising_region_shows_in_the_trend():
+    # a region-wide doubling over the window must appear in the trend, not in the districts
+    g = grid_graph(5, 5)
+    rng = np.random.default_rng(2)
+    w = 8
+    e = np.full((25, w), 4.0)
+    y = rng.poisson(e * np.exp(np.linspace(-0.35, 0.35, w))[None, :])
+    cols = list(range(w))
+    fit = fit_spacetime(pd.DataFrame(y, index=g.ids, columns=cols), pd.DataFrame(e, index=g.ids, columns=cols),
+                        g, forecast=False)
+    ratio = fit.trend_rr_mean[-1] / fit.trend_rr_mean[0]
+    assert 1.5 < ratio < 2.7  # true ratio exp(0.7) = 2.01; 800 cases
+    assert np.all(np.isnan(fit.forecast_midp))
+    assert fit.level_high.min() > 0.8 and fit.level_low.max() < 1.25
+
+
+def test_missing_counts_are_left_out():
+    y, e, g = _tables(seed=3)
+    y = y.astype(float)
+    y.iloc[0, 2] = np.nan
+    fit = fit_spacetime(y, e, g, forecast=False)
+    assert np.isnan(fit.observed[0, 2])
+    assert np.isfinite(fit.risk_mean[0, 2])
+
+
+def test_rw2_trend_and_island():
+    ids = [f"a{i}" for i in range(7)]
+    g = AreaGraph.from_edges(ids, [(ids[i], ids[i + 1]) for i in range(5)])  # a6 is an island
+    rng = np.random.default_rng(8)
+    e = pd.DataFrame(np.full((7, 6), 5.0), index=ids, columns=range(6))
+    y = pd.DataFrame(rng.poisson(5.0, (7, 6)), index=ids, columns=range(6))
+    fit = fit_spacetime(y, e, g, trend="rw2")
+    assert fit.trend == "rw2"
+    assert any("island" in t for t in fit.notes)
+    assert np.all(np.isfinite(fit.forecast_mean))
+
+
+# ------------------------------------------------------------------ input errors
+def test_input_errors():
+    y, e, g = _tables()
+    with pytest.raises(ParameterError, match="The 'trend' parameter of fit_spacetime must be one of"):
+        fit_spacetime(y, e, g, trend="linear")
+    with pytest.raises(ParameterError, match="The 'fdr' parameter of fit_spacetime must be in"):
+        fit_spacetime(y, e, g, fdr=1.5)
+    with pytest.raises(InputError, match="at least 3 weeks"):
+        fit_spacetime(y.iloc[:, :2], e.iloc[:, :2], g)
+    bad = y.copy()
+    bad.iloc[1, 1] = -1
+    with pytest.raises(InputError, match="negative or non-whole"):
+        fit_spacetime(bad, e, g)
+    e0 = e.copy()
+    e0.iloc[2, 0] = 0.0
+    with pytest.raises(InputError, match="Expected counts must be > 0"):
+        fit_spacetime(y, e0, g)
+    with pytest.raises(InputError, match="same week columns"):
+        fit_spacetime(y, e.iloc[:, ::-1], g)
+    with pytest.raises(InputError, match="must be a pandas DataFrame"):
+        fit_spacetime(y.to_numpy(), e, g)
+    with pytest.raises(ParameterError, match="sigma_tail"):
+        SpaceTimePriors(sigma_tail=2.0)
+
+
+# ------------------------------------------------------------------ MCMC reference
+def _reference_inputs():
+    data = pd.read_csv(REF / "spacetime_data.csv", dtype={"district": str})
+    edges = pd.read_csv(REF / "spacetime_graph_edges.csv", dtype=str)
+    y = data.pivot(index="district", columns="week", values="observed")
+    e = data.pivot(index="district", columns="week", values="expected")
+    g = AreaGraph.from_edges(list(y.index), edges.itertuples(index=False))
+    return y, e, g
+
+
+@pytest.fixture(scope="module")
+def reference_fit():
+    if not (REF / "spacetime_reference.csv").exists():  # pragma: no cover
+        pytest.skip("space-time reference files not generated")
+    y, e, g = _reference_inputs()
+    return fit_spacetime(y, e, g)
+
+
+@pytest.mark.slow
+def test_current_relative_risks_match_mcmc(reference_fit):
+    # Reference: long NUTS run of the same model and priors (tests/reference/generate_spacetime_reference.py)
+    ref = pd.read_csv(REF / "spacetime_reference.csv", dtype={"district": str}).set_index("district")
+    got = reference_fit.to_frame().loc[ref.index]
+    # acceptance target of the issue: posterior means within 2 %
+    assert_allclose(got["rr_mean"], ref["rr_mean"], rtol=0.02)
+    assert_allclose(got["p_above_1"], ref["p_above_1"], atol=0.04)
+    assert_allclose(got["rr_low"], ref["rr_q025"], rtol=0.06)
+    assert_allclose(got["rr_high"], ref["rr_q975"], rtol=0.06)
+    assert_allclose(got["level"], ref["level_mean"], rtol=0.02)
+
+
+@pytest.mark.slow
+def test_trend_and_hyperparameters_match_mcmc(reference_fit):
+    ref = pd.read_csv(REF / "spacetime_trend_reference.csv")
+    assert_allclose(reference_fit.trend_rr_mean, ref["trend_mean"], rtol=0.02)
+    hyp = pd.read_csv(REF / "spacetime_hyper.csv").set_index("parameter")
+    got = reference_fit.hyperparameters
+    # hyperparameter posteriors are approximated more coarsely (3^4 design): 15 % on the means
+    for name in ("sigma_district", "sigma_interaction"):
+        assert_allclose(got.loc[name, "mean"], hyp.loc[name, "mean"], rtol=0.15)
+
+
+@pytest.mark.slow
+def test_forecast_matches_mcmc_posterior_predictive(reference_fit):
+    ref = pd.read_csv(REF / "spacetime_forecast_reference.csv", dtype={"district": str}).set_index("district")
+    got = reference_fit.to_frame().loc[ref.index]
+    # predictive mean within 2 %, mid-p within 0.03 (MC error of 10,000 draws about 0.005)
+    assert_allclose(got["forecast_mean"], ref["forecast_mean"], rtol=0.02)
+    assert_allclose(got["forecast_midp"], ref["midp_upper"], atol=0.03)
+    # interval ends are integers: allow one count either way
+    assert np.max(np.abs(got["forecast_low"] - ref["forecast_q025"])) <= 1
+    assert np.max(np.abs(got["forecast_high"] - ref["forecast_q975"])) <= 1
