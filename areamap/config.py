@@ -245,6 +245,32 @@ class SmoothingConfig:
 
 
 @dataclass(frozen=True)
+class SpaceTimeConfig:
+    """``[spacetime]``: the space-time model over the trailing weeks and the newest-week forecast check."""
+
+    enabled: bool = _key(
+        True, "bool", "Fit the space-time model (districts x trailing weeks) and flag 'emerging' and 'persistent' "
+        "districts; false keeps only the model of the summed window."
+    )
+    weeks: int = _key(
+        12, "int", "Trailing weeks, ending at the period's week, used by the space-time model (fewer when the "
+        "cases file has fewer).", low=4
+    )
+    min_weeks: int = _key(
+        6, "int", "Fewest weeks of data for the space-time model; with fewer the bulletin uses the model of the "
+        "summed window and says so.", low=4
+    )
+    trend: str = _key(
+        "rw1", "choice", "Regional weekly trend: 'rw1' (random walk of order 1) or 'rw2' (order 2, smoother).",
+        choices=("rw1", "rw2"),
+    )
+    forecast_fdr: float = _key(
+        0.05, "float", "False-discovery rate for 'emerging': newest week's count above its forecast (Benjamini-"
+        "Hochberg over districts).", low=0.0, high=1.0, closed="neither"
+    )
+
+
+@dataclass(frozen=True)
 class FlagsConfig:
     """``[flags]``: when an area is flagged as a hotspot."""
 
@@ -278,6 +304,7 @@ _SECTIONS: dict[str, type] = {
     "period": PeriodConfig,
     "clusters": ClustersConfig,
     "smoothing": SmoothingConfig,
+    "spacetime": SpaceTimeConfig,
     "flags": FlagsConfig,
     "output": OutputConfig,
 }
@@ -299,7 +326,7 @@ class RunConfig:
         Bulletin title, region name and a one-line description of the data source.
     seed : int
         Seed of every permutation test and simulation of the run.
-    boundaries, cases, population, standardization, graph, period, clusters, smoothing, flags, output
+    boundaries, cases, population, standardization, graph, period, clusters, smoothing, spacetime, flags, output
         One frozen dataclass per section.
 
     Examples
@@ -323,6 +350,7 @@ class RunConfig:
     period: PeriodConfig = field(default_factory=PeriodConfig, metadata={"kind": "section"})
     clusters: ClustersConfig = field(default_factory=ClustersConfig, metadata={"kind": "section"})
     smoothing: SmoothingConfig = field(default_factory=SmoothingConfig, metadata={"kind": "section"})
+    spacetime: SpaceTimeConfig = field(default_factory=SpaceTimeConfig, metadata={"kind": "section"})
     flags: FlagsConfig = field(default_factory=FlagsConfig, metadata={"kind": "section"})
     output: OutputConfig = field(default_factory=OutputConfig, metadata={"kind": "section"})
 

@@ -307,7 +307,14 @@ def test_run_json_provenance(demo_run):
 def test_flags_follow_the_rule_and_the_history(demo_run):
     t = pd.read_csv(demo_run["out"] / "areas.csv", dtype={"area_id": str}).set_index("area_id")
     prev = demo_run["previous_csv"].set_index("area_id")
-    rule = (t["p_above_1"] >= 0.8) | (t["cluster"] == "High-High")  # the demo's [flags]: defaults
+    if demo_run["result"].run_info["spacetime"]["fitted"]:
+        # space-time model fitted: persistent (newest-week P(RR > 1) >= 0.8), emerging (forecast FDR q <= 0.05)
+        rule = ((t["week_p_above_1"] >= 0.8) | (t["cluster"] == "High-High")
+                | (t["forecast_q"].fillna(1.0) <= 0.05))
+        assert (t["emerging"] == (t["flag"] & (t["forecast_q"].fillna(1.0) <= 0.05))).all()
+        assert (t["persistent"] == (t["flag"] & (t["week_p_above_1"] >= 0.8))).all()
+    else:
+        rule = (t["p_above_1"] >= 0.8) | (t["cluster"] == "High-High")  # the demo's [flags]: defaults
     assert (t["flag"] == rule).all()
     assert (t.loc[t["flag"], "flag_reason"].str.len() > 0).all()
     assert (t.loc[~t["flag"], "flag_reason"].fillna("") == "").all()

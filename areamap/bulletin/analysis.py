@@ -48,6 +48,7 @@ import pandas as pd
 from .._params import check_interval, check_positive_int
 from ..archive import FlagChanges, HistoryArchive
 from ..errors import AreamapError, AreamapWarning, InputError, ParameterError, format_examples
+from ._spacetime_step import SPACETIME_COLUMNS
 
 __all__ = [
     "AREA_COLUMNS",
@@ -63,6 +64,7 @@ AREA_COLUMNS = (
     "area_id", "area_name", "period_start", "period_end", "observed", "expected", "population",
     "sir", "sir_low", "sir_high", "eb_rr", "rr", "rr_low", "rr_high", "p_above_1",
     "cluster", "cluster_p", "flag", "flag_reason", "flag_change", "weeks_flagged",
+    *SPACETIME_COLUMNS,
 )
 
 
@@ -98,6 +100,12 @@ class FlagRules:
         Areas with fewer observed cases are never flagged (their reason says so).
     threshold : float, default=1.0
         The relative risk in P(RR > threshold).
+    forecast_fdr : float, optional
+        When given (the space-time model was fitted), a district is also flagged
+        "emerging" when its newest week's count lies above its forecast with
+        Benjamini-Hochberg adjusted upper-tail mid-p ``forecast_q <= forecast_fdr``,
+        and the probability rule reads as "persistent" (it then uses the newest
+        week's relative risk from the space-time model).
 
     References
     ----------
@@ -110,11 +118,14 @@ class FlagRules:
     use_clusters: bool = True
     min_observed: int = 0
     threshold: float = 1.0
+    forecast_fdr: float | None = None
 
     def __post_init__(self) -> None:
         check_interval(self.min_probability, "min_probability", "FlagRules", low=0, high=1, closed="right")
         check_positive_int(self.min_observed, "min_observed", "FlagRules", minimum=0)
         check_interval(self.threshold, "threshold", "FlagRules", low=0)
+        if self.forecast_fdr is not None:
+            check_interval(self.forecast_fdr, "forecast_fdr", "FlagRules", low=0, high=1)
         if not isinstance(self.use_clusters, bool):
             raise ParameterError(
                 f"The 'use_clusters' parameter of FlagRules must be True or False. Got {self.use_clusters!r} instead."
@@ -122,7 +133,13 @@ class FlagRules:
 
     def describe(self, *, adjust: str = "fdr", alpha: float = 0.05) -> str:
         """The rule in one plain sentence (printed on the bulletin)."""
-        parts = [f"posterior P(RR > {self.threshold:g}) >= {self.min_probability:g}"]
+        if self.forecast_fdr is not None:
+            parts = [f"its newest week's count is above its forecast from its own past weeks, its neighbours "
+                     f"and the regional trend (emerging; FDR q <= {self.forecast_fdr:g})",
+                     f"the space-time model gives its newest week P(RR > {self.threshold:g}) >= "
+                     f"{self.min_probability:g} (persistent)"]
+        else:
+            parts = [f"posterior P(RR > {self.threshold:g}) >= {self.min_probability:g}"]
         if self.use_clusters:
             how = {"fdr": "false-discovery-rate control", "bonferroni": "Bonferroni correction",
                    "none": "no multiple-testing adjustment"}[adjust]
@@ -186,14 +203,27 @@ def flag_areas(
     by_prob = np.nan_to_num(p, nan=-1.0) >= rules.min_probability
     by_cluster = (table["cluster"].astype(str).to_numpy() == "High-High") & rules.use_clusters
     enough = table["observed"].to_numpy(float) >= rules.min_observed
-    flag = (by_prob | by_cluster) & enough
+    forecast = rules.forecast_fdr is not None and "forecast_q" in table.columns
+    if forecast:
+        fq = table["forecast_q"].to_numpy(float)
+        fp = table["forecast_midp"].to_numpy(float) if "forecast_midp" in table.columns else fq
+        by_forecast = np.nan_to_num(fq, nan=2.0) <= rules.forecast_fdr
+    else:
+        fq = fp = np.full(len(table), np.nan)
+        by_forecast = np.zeros(len(table), bool)
+    flag = (by_prob | by_cluster | by_forecast) & enough
     label = _ADJUST_LABEL[adjust]
     t = _fmt_num(rules.threshold)
     reasons = []
-    for pi, bp, bc, ok, q in zip(p, by_prob, by_cluster, enough, table["cluster_p"].to_numpy(float)):
+    for pi, bp, bc, ok, q, bf, fpi, fqi in zip(p, by_prob, by_cluster, enough, table["cluster_p"].to_numpy(float),
+                                            by_forecast, fp, fq):
         met = []
+        if bf:
+            met.append(f"emerging: newest week above its forecast (mid-p {_fmt_p(fpi)}, FDR q={_fmt_p(fqi)} "
+                       f"<= {rules.forecast_fdr:g})")
         if bp:
-            met.append(f"P(RR>{t}){_fmt_prob(pi)} >= {rules.min_probability:g}")
+            met.append(("persistent: " if forecast else "")
+                       + f"P(RR>{t}){_fmt_prob(pi)} >= {rules.min_probability:g}")
         if bc:
             met.append(f"High-High cluster ({label}={_fmt_p(q)})")
         text = "; ".join(met)
@@ -371,6 +401,7 @@ class PeriodAnalysis:
     rules: FlagRules = field(repr=False)
     inputs: tuple = field(repr=False)
     run_info: dict = field(repr=False)
+    spacetime_fit: object = field(default=None, repr=False)
 
     @property
     def window_weeks(self) -> int:
@@ -547,7 +578,7 @@ def analyse_period(
 
     t_start = time.perf_counter()
     run_time = _dt.datetime.now(_dt.timezone.utc).replace(microsecond=0)
-    steps = _Steps(progress, 8)
+    steps = _Steps(progress, 9)
     steps.start("configuration", "reading the configuration")
     cfg = _as_config(config, "analyse_period")
     inputs = _input_files(cfg)
@@ -612,6 +643,13 @@ def analyse_period(
                       priors=_priors(cfg), threshold=cfg.smoothing.threshold)
         car_frame = car.to_frame().reindex(ids)
 
+        steps.start("spacetime", f"space-time model over up to {cfg.spacetime.weeks} weeks and forecast check")
+        from . import _spacetime_step
+
+        st_fit, st_weeks, st_note = _spacetime_step.fit_for_period(cfg, study, key, ids, graph, rates)
+        st_cols = _spacetime_step.columns(st_fit, ids, threshold_differs=not math.isclose(cfg.smoothing.threshold,
+                                                                                         1.0))
+
         steps.start("clusters", f"Moran's I and local clusters ({cfg.clusters.permutations} permutations)")
         from ..autocorrelation import rate_local_clusters, rate_morans_i
 
@@ -643,11 +681,21 @@ def analyse_period(
             table["p_above_threshold"] = car_frame["p_above_threshold"].to_numpy(float)
         table["cluster"] = local["cluster"].astype(str).to_numpy()
         table["cluster_p"] = local["p_adjusted"].to_numpy(float)
-        flags = flag_areas(
-            table.assign(p_exceed=table["p_above_threshold"] if threshold_differs else table["p_above_1"]),
-            rules=rules, adjust=cl.adjust)
+        for c in SPACETIME_COLUMNS:
+            table[c] = st_cols[c].to_numpy()
+        p_exceed = table["p_above_threshold"] if threshold_differs else table["p_above_1"]
+        if st_fit is not None:
+            # persistent: the newest week's risk under the space-time model; plus the emerging rule
+            rules = dataclasses.replace(rules, forecast_fdr=cfg.spacetime.forecast_fdr)
+            p_exceed = pd.Series(st_cols.attrs["p_exceed"], index=ids)
+        flag_input = table.assign(p_exceed=p_exceed)
+        flags = flag_areas(flag_input, rules=rules, adjust=cl.adjust)
         table["flag"] = flags["flag"].to_numpy(bool)
         table["flag_reason"] = flags["flag_reason"].to_numpy(object)
+        if st_fit is not None:
+            # the kinds count only where the district is flagged (min_observed can hold a flag back)
+            table["emerging"] = table["flag"] & flags["flag_reason"].str.contains("emerging:").to_numpy(bool)
+            table["persistent"] = table["flag"] & flags["flag_reason"].str.contains("persistent:").to_numpy(bool)
         changes = archive.compare(key, table["flag"])
         table["flag_change"] = changes.status.to_numpy(object)
         table["weeks_flagged"] = changes.weeks_flagged.to_numpy(np.int64)
@@ -682,18 +730,24 @@ def analyse_period(
                            "counts": {k_: int(v) for k_, v in table["cluster"].value_counts().items()}},
         "empirical_bayes": {"prior_mean": eb.prior_mean, "prior_shape": eb.prior_shape},
         "model": _model_summary(car, cfg),
+        "spacetime": _spacetime_step.run_info(st_fit, st_weeks, st_note),
         "flags": {"rule": rules.describe(adjust=cl.adjust, alpha=cl.alpha), **counts,
+                  "kinds": {"emerging": int(table["emerging"].sum()), "persistent": int(table["persistent"].sum()),
+                            "cluster": int((table["flag"] & (table["cluster"] == "High-High")
+                                            & rules.use_clusters).sum())},
                   "previous_period": changes.previous_period,
                   "previous_available": changes.previous_available},
         "suppress_below": cfg.output.suppress_below,
-        "notes": [*getattr(study, "notes", ()), *(f"Local clusters: {n}" for n in local_result.notes)],
+        "notes": [*getattr(study, "notes", ()), *(f"Local clusters: {n}" for n in local_result.notes),
+                  *([st_note] if st_note and cfg.spacetime.enabled else []),
+                  *(f"Space-time model: {n}" for n in (st_fit.notes if st_fit is not None else ()))],
         "warnings": run_warnings,
         "timings_seconds": {**steps.timings, "analysis": round(time.perf_counter() - t_start, 3)},
     }
     return PeriodAnalysis(
         config=cfg, period=key, weeks=tuple(window), period_start=start_day, period_end=end_day, areas=areas,
         graph=graph, morans_i=moran, local_clusters=local_result, empirical_bayes=eb, car_fit=car,
-        changes=changes, rules=rules, inputs=tuple(hashes), run_info=run_info,
+        changes=changes, rules=rules, inputs=tuple(hashes), run_info=run_info, spacetime_fit=st_fit,
     )
 
 

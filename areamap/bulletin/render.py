@@ -20,6 +20,7 @@ import numpy as np
 import pandas as pd
 
 from ..archive import FlagChanges
+from ._spacetime_step import WEEK_DISCLOSING_COLUMNS
 from .analysis import (
     _ADJUST_LABEL,
     _DISCLOSING_COLUMNS,
@@ -66,7 +67,8 @@ def render_bulletin(analysis: PeriodAnalysis, folder: str | Path, *, public: boo
     timings = info["timings_seconds"] = dict(info.get("timings_seconds", {}))
     t0 = time.perf_counter()
     figures, figure_notes = _figures(analysis.areas, analysis.graph, analysis.local_clusters.to_frame()
-                                     .reindex(analysis.areas.index), cfg, analysis.period)
+                                     .reindex(analysis.areas.index), cfg, analysis.period,
+                                     spacetime_fit=analysis.spacetime_fit)
     timings["figures"] = round(time.perf_counter() - t0, 4)
     if started is not None:
         timings["total"] = round(time.perf_counter() - started, 3)
@@ -129,8 +131,14 @@ def _write_tables(areas, folder: Path, *, public: bool, suppress_below: int, thr
         frame["observed"] = suppress_counts(frame["observed"], threshold=suppress_below).to_numpy(object)
         for c in _DISCLOSING_COLUMNS:
             frame.loc[hide, c] = np.nan
+        # the newest week's count: suppressed like the window's, with the columns that give it back
+        hide_week = _suppressed_mask(frame["week_observed"], suppress_below)
+        frame["week_observed"] = suppress_counts(frame["week_observed"], threshold=suppress_below).to_numpy(object)
+        for c in WEEK_DISCLOSING_COLUMNS:
+            frame.loc[hide_week, c] = np.nan
     plain = pd.DataFrame(frame.drop(columns="geometry")).reset_index()
-    plain["flag"] = plain["flag"].map({True: "true", False: "false"})
+    for c in ("flag", "emerging", "persistent"):
+        plain[c] = plain[c].map({True: "true", False: "false"})
     plain.to_csv(folder / "areas.csv", index=False, float_format="%.10g", encoding="utf-8", lineterminator="\n")
     gdf = frame.reset_index()
     gdf.to_file(folder / "areas.gpkg", layer="areas", driver="GPKG")
@@ -149,6 +157,8 @@ _REFERENCES = (
     "Cohort Studies. IARC Scientific Publications No. 82, Lyon (indirect standardization, exact Poisson limits).",
     "Clayton D, Kaldor J (1987). Empirical Bayes estimates of age-standardized relative risks for use in "
     "disease mapping. Biometrics 43(3):671–681.",
+    "Knorr-Held L (2000). Bayesian modelling of inseparable space-time variation in disease risk. Statistics in "
+    "Medicine 19:2555-2567.",
     "Leroux BG, Lei X, Breslow N (2000). Estimation of disease rates in small areas: a new mixed model for "
     "spatial dependence. In: Statistical Models in Epidemiology, the Environment, and Clinical Trials, 179–191.",
     "Moran PAP (1950). Notes on continuous stochastic phenomena. Biometrika 37(1/2):17–23.",
@@ -234,6 +244,16 @@ def _methods(cfg, rules: FlagRules, n_window: int) -> list[str]:
         "cut-off follows Richardson et al. (2004). Each flagged district's reason lists the rules it met; "
         "'new', 'continuing' and 'resolved' compare with the previous week in the history archive, and "
         "'periods flagged' counts consecutive flagged weeks.",
+        *([] if not cfg.spacetime.enabled else [
+            f"Space-time model (when at least {cfg.spacetime.min_weeks} weeks of data exist): weekly counts of "
+            f"the last {cfg.spacetime.weeks} weeks, with expected counts from indirect standardization over that "
+            "whole window, are fitted by a Poisson model whose log relative risk is the sum of a BYM2 district "
+            f"effect (each district's persistent level), a {cfg.spacetime.trend.upper()} random walk over weeks "
+            "(the regional trend) and an independent district-week term (Knorr-Held 2000, type I). The model is "
+            "fitted a second time without the newest week's counts; each district's newest count is compared "
+            "with that forecast by its upper-tail predictive mid-p value, with Benjamini–Hochberg control of "
+            f"the false-discovery rate at {cfg.spacetime.forecast_fdr:g} ('emerging'). 'Persistent' uses the "
+            "newest week's relative risk from the fit with all weeks."]),
         "The funnel plot (Spiegelhalter 2005) shows each district's SIR against its expected count with "
         "95% and 99.8% control limits around 1; points outside the funnel are more extreme than chance "
         "variation would usually give.",
@@ -289,6 +309,8 @@ def _render_html(cfg, areas, changes: FlagChanges, moran, rules: FlagRules, figu
             "moran_sentence": _moran_sentence(moran.statistic, moran.expected, moran.p_permutation),
             "total_observed": f"{int(table['observed'].sum()):,}",
             "total_expected": f"{table['expected'].sum():,.1f}",
+            "kinds": run_info["flags"].get("kinds"),
+            "spacetime": _spacetime_headline(run_info.get("spacetime")),
         },
         "flag_rule_text": rules.describe(adjust=cfg.clusters.adjust, alpha=cfg.clusters.alpha),
         "figures": figures, "figure_notes": figure_notes,
@@ -315,7 +337,7 @@ def _plain(text: str) -> str:
     return str(text).replace("$", r"\$")
 
 
-def _figures(areas, graph, local, cfg, key: str) -> tuple[list[dict], list[str]]:
+def _figures(areas, graph, local, cfg, key: str, *, spacetime_fit=None) -> tuple[list[dict], list[str]]:
     """The bulletin's figures as PNG data URIs, with titles, captions and alt texts."""
     import matplotlib.pyplot as plt
 
@@ -373,8 +395,54 @@ def _figures(areas, graph, local, cfg, key: str) -> tuple[list[dict], list[str]]
             "Standardized incidence ratio against expected count with 95% and 99.8% exact Poisson control "
             "limits around 1. Points outside the funnel vary more than chance alone would usually give.",
             "Scatter plot of standardized ratio against expected count with funnel-shaped control limits.")
+        if spacetime_fit is not None:
+            _spacetime_figures(add, areas, spacetime_fit, cfg)
     n_islands = int(graph.island_mask().sum())
     if n_islands:
         notes.append(f"{n_islands} district(s) have no neighbours in the graph; they take no part in the "
                      "cluster analysis ('no neighbours').")
     return out, notes
+
+
+def _spacetime_figures(add, areas, fit, cfg) -> None:
+    """The regional weekly curve and small multiples of the flagged districts (space-time model)."""
+    import matplotlib.pyplot as plt
+
+    from .. import trendplots
+
+    fig, ax = plt.subplots(figsize=(8.0, 4.0), layout="constrained")
+    trendplots.plot_regional_trend(fit, ax=ax)
+    add("regional-trend", fig, "Cases per week and the regional trend",
+        f"Observed cases per week over the last {len(fit.weeks)} weeks in the whole region (dots) with the "
+        f"space-time model's regional trend ({fit.trend.upper()} random walk) and its 95% interval, on the scale "
+        "of cases (expected cases times the regional relative risk).",
+        "Line chart of weekly case totals with a smooth trend line and a shaded band.")
+    flagged = areas[areas["flag"]]
+    order = flagged.assign(_e=flagged["emerging"].astype(int)).sort_values(
+        ["_e", "week_p_above_1"], ascending=False, kind="stable")
+    ids = list(order.index[:12])
+    if not ids:
+        return
+    names = {k: _plain(v) for k, v in areas["area_name"].items()}
+    fig = trendplots.plot_district_trends(fit, ids, names=names)
+    more = f" (the first 12 of {len(order)})" if len(order) > 12 else ""
+    add("district-trends", fig, "Flagged districts week by week",
+        f"Weekly counts of the flagged districts{more}, emerging ones first, against the model's 95% band "
+        "(expected count times relative risk); for the newest week also the forecast from the district's "
+        "own past, its neighbours and the regional trend (orange, 95% interval). A count above the orange "
+        "interval is what the 'emerging' rule detects. Counts are drawn unsuppressed: check disclosure rules "
+        "before publishing districts with few cases.",
+        "Grid of small line charts, one per flagged district, of weekly counts with a shaded model band.")
+
+
+def _spacetime_headline(info: dict | None) -> str:
+    """One sentence on the space-time model for the headline (fitted or why not)."""
+    if not info:
+        return ""
+    if not info.get("fitted"):
+        return str(info.get("note") or "")
+    tr = info["regional_trend"]
+    first, last = tr[0], tr[-1]
+    return (f"Space-time model over {len(info['weeks'])} weeks ({info['weeks'][0]} to {info['weeks'][-1]}): the "
+            f"regional trend's relative risk went from {first['trend_rr']:.2f} to {last['trend_rr']:.2f} "
+            f"(newest week 95% interval {last['trend_rr_low']:.2f} to {last['trend_rr_high']:.2f}).")
