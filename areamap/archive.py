@@ -48,7 +48,14 @@ from .intake import parse_week, week_bounds, weeks_ending
 __all__ = ["HistoryArchive", "FlagChanges", "SCHEMA_VERSION", "ARCHIVE_COLUMNS"]
 
 #: Version of the table layout written by this areamap; bumped on incompatible changes.
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2
+
+#: Columns added by each schema version (an older archive is upgraded in place when written to).
+_ADDED_COLUMNS: dict[int, dict[str, str]] = {
+    2: {"week_observed": "INTEGER", "week_expected": "REAL", "week_rr": "REAL", "week_p_above_1": "REAL",
+        "forecast_mean": "REAL", "forecast_low": "REAL", "forecast_high": "REAL", "forecast_q": "REAL",
+        "emerging": "INTEGER", "persistent": "INTEGER"},
+}
 
 #: Per-area columns kept for each period, with their SQLite types.
 ARCHIVE_COLUMNS: dict[str, str] = {
@@ -70,6 +77,7 @@ ARCHIVE_COLUMNS: dict[str, str] = {
     "flag_reason": "TEXT",
     "flag_change": "TEXT",
     "weeks_flagged": "INTEGER",
+    **_ADDED_COLUMNS[2],
 }
 
 _SCHEMA = f"""
@@ -283,6 +291,8 @@ class HistoryArchive:
                 "schema_version table). Point [output] archive at a new file."
             )
         row = con.execute("SELECT version FROM schema_version").fetchone()
+        if row is not None and row[0] in _ADDED_COLUMNS.keys() | {1} and row[0] < SCHEMA_VERSION:
+            return True  # older layout: readable as is, upgraded by _upgrade when written to
         if row is None or row[0] != SCHEMA_VERSION:
             found = None if row is None else row[0]
             raise ArchiveError(
@@ -361,6 +371,8 @@ class HistoryArchive:
                         if stmt.strip():
                             con.execute(stmt)
                     con.execute("INSERT INTO schema_version (version) VALUES (?)", (SCHEMA_VERSION,))
+                else:
+                    _upgrade(con)
                 con.execute("DELETE FROM area_results WHERE period = ?", (key,))
                 con.execute("DELETE FROM periods WHERE period = ?", (key,))
                 con.execute(
@@ -524,6 +536,16 @@ class HistoryArchive:
 
 
 # ----------------------------------------------------------------------------- helpers
+def _upgrade(con: sqlite3.Connection) -> None:
+    """Add the columns of later schema versions to an older archive (inside the write transaction)."""
+    version = con.execute("SELECT version FROM schema_version").fetchone()[0]
+    for v in range(version + 1, SCHEMA_VERSION + 1):
+        for name, kind in _ADDED_COLUMNS[v].items():
+            con.execute(f"ALTER TABLE area_results ADD COLUMN {name} {kind}")
+    if version < SCHEMA_VERSION:
+        con.execute("UPDATE schema_version SET version = ?", (SCHEMA_VERSION,))
+
+
 def _has_tables(con: sqlite3.Connection) -> bool:
     return con.execute(
         "SELECT 1 FROM sqlite_master WHERE type='table' AND name='area_results'").fetchone() is not None
@@ -562,6 +584,7 @@ def _empty_results() -> pd.DataFrame:
 
 
 def _tidy(frame: pd.DataFrame) -> pd.DataFrame:
-    if "flag" in frame.columns:
-        frame["flag"] = frame["flag"].fillna(0).astype(bool)
+    for c in ("flag", "emerging", "persistent"):
+        if c in frame.columns:
+            frame[c] = frame[c].fillna(0).astype(bool)
     return frame

@@ -103,24 +103,76 @@ def _cmd_history(args: argparse.Namespace) -> int:
             f"No history archive at {archive.path} yet. Run 'areamap bulletin {args.config}' first."
         )
     table = archive.history(area=args.area, last=args.last)
-    print(_history_text(table, area=args.area, last=args.last))
+    weekly = None
+    if not table.empty:
+        from .errors import AreamapError
+        from .intake import load_study
+
+        try:  # weekly counts from the cases file; the archive alone is enough when it cannot be read
+            weekly = load_study(config).weekly_cases()
+        except AreamapError:
+            weekly = None
+    print(_history_text(table, area=args.area, last=args.last, weekly=weekly))
     return 0
 
 
-def _history_text(table, *, area, last: int) -> str:
+def _history_text(table, *, area, last: int, weekly=None) -> str:
     """Plain-text table of archived periods (counts as archived, unsuppressed: for analysts)."""
     who = f"area {area}" if area else "districts flagged"
     head = f"History ({who}, last {last} archived period(s)):"
     if table.empty:
         return head + "\n(no flagged districts in these periods)"
-    cols = ["period", "area_id", "area_name", "observed", "expected", "rr", "p_above_1", "cluster",
-            "flag", "flag_change", "weeks_flagged"]
+    cols = ["period", "area_id", "area_name", "observed", "expected", "rr", "p_above_1", "week_observed",
+            "forecast_mean", "forecast_high", "cluster", "flag", "flag_change", "weeks_flagged"]
     shown = table[[c for c in cols if c in table.columns]].copy()
-    for c, digits in (("expected", 1), ("rr", 2), ("p_above_1", 2)):
+    for c, digits in (("expected", 1), ("rr", 2), ("p_above_1", 2), ("forecast_mean", 1), ("forecast_high", 0),
+                      ("week_observed", 0)):
         if c in shown:
             shown[c] = shown[c].map(lambda x, d=digits: "" if x is None or x != x else f"{x:.{d}f}")
     shown["flag"] = shown["flag"].map({True: "yes", False: "no"})
-    return head + "\n" + shown.to_string(index=False)
+    if "week_observed" in shown and (shown["week_observed"] == "").all():
+        shown = shown.drop(columns=["week_observed", "forecast_mean", "forecast_high"], errors="ignore")
+    return head + "\n" + shown.to_string(index=False) + "\n\n" + _trend_lines(table, weekly=weekly, last=last)
+
+
+def _flag_letter(row) -> str:
+    """One character per period: E emerging, P persistent, C cluster or other rule, . not flagged."""
+    if not row.get("flag", False):
+        return "."
+    if row.get("emerging", False):
+        return "E"
+    if row.get("persistent", False):
+        return "P"
+    return "C" if str(row.get("cluster", "")) == "High-High" else "F"
+
+
+def _trend_lines(table, *, weekly=None, last: int = 8) -> str:
+    """Compact trend per district, one column per week (oldest first): the week's count and its flag.
+
+    Counts come from the cases file (``weekly``: areas x ISO weeks) when given, else from the
+    archive (each period's newest-week count); weeks without an archived period show a blank flag.
+    """
+    from .intake import weeks_ending
+
+    newest = str(table["period"].max())
+    weeks = weeks_ending(newest, max(last, 1))
+    lines = [f"Weekly trend, {weeks[0]} to {weeks[-1]} (count per week; flag per archived week: E emerging, "
+             "P persistent, C High-High cluster, F other rule, . not flagged, blank not archived):"]
+    for area, rows in table.groupby("area_id", sort=True):
+        by_week = {str(r["period"]): r for r in rows.to_dict("records")}
+        if weekly is not None and area in weekly.index:
+            counts = [int(weekly.at[area, w]) if w in weekly.columns else None for w in weeks]
+        else:
+            col = "week_observed" if "week_observed" in rows and rows["week_observed"].notna().any() else "observed"
+            counts = [by_week[w].get(col) if w in by_week else None for w in weeks]
+        cells = ["-" if v is None or v != v else str(int(v)) for v in counts]
+        flags = [_flag_letter(by_week[w]) if w in by_week else " " for w in weeks]
+        width = max(len(c) for c in cells)
+        name = str(rows["area_name"].iloc[-1]) if "area_name" in rows else ""
+        lines.append(f"  {area} {name}")
+        lines.append("    counts " + " ".join(c.rjust(width) for c in cells))
+        lines.append("    flags  " + " ".join(f.rjust(width) for f in flags))
+    return "\n".join(lines)
 
 
 # --------------------------------------------------------------------------- parser

@@ -241,3 +241,29 @@ def test_failing_before_commit_rolls_back(archive):
     called = []
     archive.write_period("2026-W47", _frame([True] * 4), before_commit=lambda: called.append(1))
     assert called == [1] and archive.periods() == ["2026-W46", "2026-W47"]
+
+
+def test_version_1_archive_is_read_and_upgraded_in_place(archive):
+    # an archive written by the first layout (no space-time columns) stays readable and gains them on write
+    from areamap.archive import _ADDED_COLUMNS, ARCHIVE_COLUMNS
+
+    old_cols = {c: t for c, t in ARCHIVE_COLUMNS.items() if c not in _ADDED_COLUMNS[2]}
+    with sqlite3.connect(archive.path) as con:
+        con.execute("CREATE TABLE schema_version (version INTEGER NOT NULL)")
+        con.execute("INSERT INTO schema_version VALUES (1)")
+        con.execute("CREATE TABLE periods (period TEXT PRIMARY KEY, period_start TEXT NOT NULL, period_end TEXT "
+                    "NOT NULL, window_weeks INTEGER NOT NULL, written_at TEXT NOT NULL, tool_version TEXT, "
+                    "n_areas INTEGER NOT NULL, n_flagged INTEGER NOT NULL)")
+        con.execute("CREATE TABLE area_results (period TEXT NOT NULL, area_id TEXT NOT NULL, "
+                    + ", ".join(f"{c} {t}" for c, t in old_cols.items()) + ", PRIMARY KEY (period, area_id))")
+        con.execute("INSERT INTO periods VALUES ('2026-W46', '2026-11-09', '2026-11-15', 1, 'x', '0.1', 1, 1)")
+        con.execute("INSERT INTO area_results (period, area_id, observed, flag) VALUES ('2026-W46', 'A', 3, 1)")
+    assert archive.read_period("2026-W46")["flag"].tolist() == [True]
+    frame = _frame([True, False, True, False]).assign(emerging=[True, False, False, False], week_observed=[5, 0, 1, 2])
+    archive.write_period("2026-W47", frame)
+    with sqlite3.connect(archive.path) as con:
+        assert con.execute("SELECT version FROM schema_version").fetchall() == [(SCHEMA_VERSION,)]
+    back = archive.read_period("2026-W47")
+    assert back["emerging"].tolist() == [True, False, False, False]
+    assert back["week_observed"].tolist() == [5, 0, 1, 2]
+    assert archive.compare("2026-W47", frame["flag"]).weeks_flagged.loc["A"] == 2  # history kept

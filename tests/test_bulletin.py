@@ -554,3 +554,18 @@ def test_analyse_period_writes_nothing_and_reproduces_the_bulletin(demo_run):
     assert mine["cluster"].tolist() == published["cluster"].tolist()
     assert mine["flag"].tolist() == published["flag"].astype(str).str.lower().eq("true").tolist()
     assert "Analysis of 2026-W47" in analysis.summary()
+
+
+def test_flag_areas_emerging_and_persistent_reasons():
+    # space-time rules: emerging when forecast_q <= forecast_fdr, the probability rule reads "persistent"
+    t = pd.DataFrame({"observed": [12, 3, 4], "p_exceed": [0.93, 0.2, 0.1],
+                      "cluster": ["not significant"] * 3, "cluster_p": [0.5, 0.5, 0.5],
+                      "forecast_midp": [0.2, 0.0004, 0.03], "forecast_q": [0.6, 0.012, 0.06]},
+                     index=["A", "B", "C"])
+    out = flag_areas(t, rules=FlagRules(forecast_fdr=0.05))
+    assert out["flag"].tolist() == [True, True, False]
+    assert out.loc["A", "flag_reason"] == "persistent: P(RR>1)=0.93 >= 0.8"
+    assert out.loc["B", "flag_reason"] == "emerging: newest week above its forecast (mid-p <0.001, FDR q=0.012 <= 0.05)"
+    assert "emerging" in FlagRules(forecast_fdr=0.05).describe()
+    # without forecast_fdr the forecast columns are ignored (cross-sectional rule as before)
+    assert flag_areas(t)["flag"].tolist() == [True, False, False]

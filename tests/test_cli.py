@@ -10,6 +10,7 @@ import warnings
 from pathlib import Path
 
 import geopandas as gpd
+import pandas as pd
 import pytest
 import shapely
 
@@ -185,3 +186,20 @@ def test_demo_then_check(tmp_path, capsys):
     capsys.readouterr()
     assert cli.main(["check", str(tmp_path / "d" / "run.toml")]) == 0
     assert "Inputs are usable." in capsys.readouterr().out
+
+
+def test_history_trend_lines_show_weekly_counts_and_flag_letters():
+    from areamap.cli import _trend_lines
+
+    table = pd.DataFrame({
+        "period": ["2026-W46", "2026-W47"], "area_id": ["A", "A"], "area_name": ["Alder", "Alder"],
+        "observed": [3, 9], "week_observed": [3, 9], "flag": [False, True], "emerging": [False, True],
+        "persistent": [False, False], "cluster": ["not significant", "not significant"],
+    })
+    weekly = pd.DataFrame({"2026-W44": [1], "2026-W45": [2], "2026-W46": [3], "2026-W47": [9]}, index=["A"])
+    text = _trend_lines(table, weekly=weekly, last=4)
+    assert "2026-W44 to 2026-W47" in text
+    assert "counts 1 2 3 9" in text
+    assert text.splitlines()[-1].split() == ["flags", ".", "E"]  # W44, W45 not archived: blank
+    # without the cases file: the archived newest-week counts, '-' where no period is archived
+    assert "counts - - 3 9" in _trend_lines(table, last=4)
