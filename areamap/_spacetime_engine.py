@@ -339,13 +339,16 @@ def _fit_quadratic(z, f):
     return grad, hess
 
 
-def fast_design(log_prior, latent, theta0, bounds, *, h=0.15, max_steps=8, tol=0.02):
+def fast_design(log_prior, latent, theta0, bounds, *, h=0.15, max_steps=12, tol=0.02, min_gain=0.1):
     """Mode of log p(θ | y) by Newton steps on local quadratic fits, then 2d + 1 axial points.
 
     For large problems, where the hyperparameter posterior is concentrated and every
     Laplace evaluation costs a sparse factorization of size n(W + 1): the first step fits
-    a full quadratic (1 + 2d + d(d−1)/2 evaluations), later steps reuse its Hessian and take
-    central-difference gradients (2d + 1 evaluations). The integration design is the mode
+    a full quadratic (1 + 2d + d(d−1)/2 evaluations), later steps update its Hessian (BFGS) from
+    curvature-corrected forward-difference gradients (d + 1 evaluations). The search stops when a
+    step moves θ by less than ``tol`` or raises log p(θ | y) by less than ``min_gain`` (a weakly
+    identified direction, e.g. φ drifting towards 1, then stops where it no longer matters for the
+    latent marginals; the axial design still spreads along it). The integration design is the mode
     and ±1 standard deviation along each principal axis of the Gaussian fit at the mode,
     weighted by the Laplace posterior density (equal volumes): a coarse grid restricted to
     the axes, adequate when θ is well determined (documented in docs/methods.md).
@@ -364,32 +367,33 @@ def fast_design(log_prior, latent, theta0, bounds, *, h=0.15, max_steps=8, tol=0
 
     theta = np.clip(np.asarray(theta0, float), lo, hi)
     f0, r0 = evaluate(theta)
-    hess = None
-    for step_no in range(max_steps):
+    hess = grad = None
+
+    def gradient(centre, f_centre, hess):
+        # forward differences corrected by the current curvature estimate: (f(θ + h e_i) − f(θ))/h − h H_ii/2
+        g = np.empty(d)
+        for i in range(d):
+            e = np.zeros(d)
+            e[i] = h
+            warm[0] = centre
+            g[i] = (evaluate(theta + e)[0] - f_centre) / h - 0.5 * h * hess[i, i]
+        return g
+
+    for _ in range(max_steps):
         centre = (r0.x, r0.theta)
-        if hess is None:
+        fresh = hess is None
+        if fresh:
             z = _quadratic_points(d, h)
             vals = [f0]
             for zz in z[1:]:
                 warm[0] = centre
                 vals.append(evaluate(theta + zz)[0])
             grad, hess = _fit_quadratic(z, np.array(vals))
-        else:
-            grad = np.empty(d)
-            for i in range(d):
-                e = np.zeros(d)
-                e[i] = h
-                warm[0] = centre
-                fp = evaluate(np.clip(theta + e, lo - 1, hi + 1))[0]
-                warm[0] = centre
-                fm = evaluate(np.clip(theta - e, lo - 1, hi + 1))[0]
-                grad[i] = (fp - fm) / (2 * h)
         ev, evec = np.linalg.eigh(-hess)
         ev = np.maximum(ev, 1e-2)
-        step = evec @ ((evec.T @ grad) / ev)
-        big = np.max(np.abs(step))
-        if big > 1.0:
-            step = step / big
+        # Newton step, limited to 1 unit along each principal axis (a flat direction such as a weakly
+        # identified phi then cannot shrink the step along the well-determined ones)
+        step = evec @ np.clip((evec.T @ grad) / ev, -2.0, 2.0)
         accepted = False
         for _ in range(6):
             cand = np.clip(theta + step, lo, hi)
@@ -400,11 +404,25 @@ def fast_design(log_prior, latent, theta0, bounds, *, h=0.15, max_steps=8, tol=0
                 break
             step = step / 2.0
         if not accepted:
-            break
-        moved = np.max(np.abs(cand - theta))
+            if fresh:
+                break
+            hess = None  # the updated Hessian led nowhere: refit the local quadratic and try again
+            continue
+        moved = cand - theta
+        gain = fc - f0
         theta, f0, r0 = cand, fc, rc
-        if moved < tol:
+        if np.max(np.abs(moved)) < tol or gain < min_gain:
             break
+        # quasi-Newton (BFGS) update of the Hessian from the change of the gradient
+        new_grad = gradient((r0.x, r0.theta), f0, hess)
+        yv = new_grad - grad
+        sy = float(moved @ yv)
+        if sy < -1e-10:  # curvature condition for a maximum
+            hs = hess @ moved
+            hess = hess - np.outer(hs, hs) / float(moved @ hs) + np.outer(yv, yv) / sy
+        grad = new_grad
+    if hess is None:  # pragma: no cover - max_steps = 0
+        hess = -np.eye(d)
     edge = bool(np.any(np.abs(theta - lo) < 1e-3) or np.any(np.abs(theta - hi) < 1e-3))
     ev, evec = np.linalg.eigh(-hess)
     if np.any(ev <= 1e-8):

@@ -25,6 +25,7 @@ forecast intervals and flags are statements under the model and its priors.
 from __future__ import annotations
 
 import html
+import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -35,7 +36,7 @@ from . import _car_engine as eng
 from ._params import check_choice, check_interval
 from ._spacetime_engine import _SpaceTimeLatent, fast_design, reweight_design
 from .autocorrelation import adjust_pvalues
-from .errors import InputError, format_examples
+from .errors import InputError, ModelWarning, format_examples
 from .graphs import AreaGraph
 
 __all__ = ["SpaceTimePriors", "SpaceTimeFit", "fit_spacetime"]
@@ -376,19 +377,28 @@ def _fit_design(y, e, xs, gs, priors, trend):
     latent = _latent(y, e, xs, gs, priors, trend)
     fixed_phi = latent.fixed_phi
     lam_s, lam_t, lam_d = priors.rates()
-    raw = np.log((np.nan_to_num(y, nan=0.0) + 0.5) / e)
+    # starting values: moment estimates of the SDs beyond Poisson noise (approximate variance of a log
+    # ratio with c cases: 1 / (c + 0.5))
     fin = np.isfinite(y)
-    dist = np.nanmean(np.where(fin, raw, np.nan), axis=1)
-    s0 = np.log(np.clip(np.std(dist), 0.1, 1.0))
-    week = np.nanmean(np.where(fin, raw, np.nan)[:, fin.any(axis=0)], axis=0)
+    y0 = np.where(fin, y, 0.0)
+    e0 = np.where(fin, e, 0.0)
+    dist = np.log((y0.sum(axis=1) + 0.5) / (e0.sum(axis=1) + 0.5))
+    s0 = np.log(np.sqrt(np.clip(np.var(dist) - np.mean(1.0 / (y0.sum(axis=1) + 0.5)), 0.0025, 1.0)))
+    obs_w = fin.any(axis=0)
+    week = np.log((y0.sum(axis=0)[obs_w] + 0.5) / (e0.sum(axis=0)[obs_w] + 0.5))
     t0 = np.log(np.clip(np.std(week), 0.05, 0.5))
+    raw = np.log((y0 + 0.5) / np.where(fin, e, 1.0)) - dist[:, None]
+    resid = np.where(fin, raw, np.nan)[:, obs_w]
+    resid = resid - np.nanmean(resid, axis=0)[None, :]
+    d_excess = np.nanvar(resid) - np.mean(1.0 / (y0[fin] + 0.5))
+    d0 = np.log(np.sqrt(np.clip(d_excess, 0.0004, 1.0)))
     lo = [np.log(1e-3 / lam_s), np.log(1e-3 / lam_t), np.log(1e-3 / lam_d)]
     hi = np.log(20.0)
     if fixed_phi is None:
-        theta0 = np.array([s0, 0.0, t0, np.log(0.1)])
+        theta0 = np.array([s0, 0.0, t0, d0])
         bounds = [(lo[0], hi), (-9.0, 9.0), (lo[1], hi), (lo[2], hi)]
     else:
-        theta0 = np.array([s0, t0, np.log(0.1)])
+        theta0 = np.array([s0, t0, d0])
         bounds = [(lo[0], hi), (lo[1], hi), (lo[2], hi)]
     log_prior = _log_prior_fn(gs, priors, fixed_phi)
     if y.size > FAST_LIMIT:
@@ -587,7 +597,12 @@ def fit_spacetime(
         notes.append(f"{gs.islands.size} island(s) carry only the unstructured district effect.")
     design, latent, log_prior = _fit_design(y, e, xs, gs, priors, trend)
     if design.edge:
-        eng.warn_edge("space-time")
+        warnings.warn(
+            "The posterior of the space-time hyperparameters reaches the edge of the integration design or a "
+            "bound (often: no district-week variation beyond Poisson noise, so the interaction SD goes to 0): "
+            "results lean on the priors there. Check SpaceTimePriors if this is unexpected.",
+            ModelWarning, stacklevel=2,
+        )
         notes.append("Hyperparameter posterior reaches the edge of the integration design.")
     wt = design.weights
     mu = np.column_stack([r.mean_eta for r in design.results])
