@@ -83,6 +83,7 @@ from .maps import (
 )
 from .models import CarFit, CarPriors, fit_car
 from .spacetime import SpaceTimeFit, SpaceTimePriors, fit_spacetime
+from .trendplots import plot_district_trends, plot_regional_trend
 from .rates import (
     DirectRateResult,
     RateResult,
@@ -134,7 +135,7 @@ __all__ = [
     "funnel_plot", "moran_scatterplot", "shrinkage_plot", "ranked_interval_plot", "add_map_furniture",
     # CAR models
     "CarPriors", "CarFit", "fit_car",
-    "SpaceTimePriors", "SpaceTimeFit", "fit_spacetime",
+    "SpaceTimePriors", "SpaceTimeFit", "fit_spacetime", "plot_regional_trend", "plot_district_trends",
     # bulletin and history
     "analyse_period", "PeriodAnalysis", "render_bulletin", "run_bulletin", "BulletinResult", "FlagRules",
     "flag_areas", "suppress_counts", "file_sha256",

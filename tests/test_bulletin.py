@@ -358,13 +358,18 @@ def test_public_tables_suppress_small_counts_and_rerun_is_repeatable(demo_run, t
     assert len(archive.read_period("2026-W47")) == len(full)
     small = full.index[(full["observed"] >= 1) & (full["observed"] <= 4)]
     assert len(small) > 0  # the demo has small counts
-    for table in (pd.read_csv(out / "areas.csv", dtype={"area_id": str, "observed": str}),
+    for table in (pd.read_csv(out / "areas.csv", dtype={"area_id": str, "observed": str, "week_observed": str}),
                   gpd.read_file(out / "areas.gpkg")):
         table = table.set_index("area_id")
         assert (table.loc[small, "observed"] == "<5").all()
         assert table.loc[small, ["sir", "sir_low", "sir_high", "eb_rr"]].isna().all().all()
         big = full.index[full["observed"] >= 5]
         assert (table.loc[big, "observed"].astype(int) == full.loc[big, "observed"]).all()
+        # the newest week's count of the space-time model is suppressed the same way, with its mid-p values
+        small_week = full.index[(full["week_observed"] >= 1) & (full["week_observed"] <= 4)]
+        assert len(small_week) > 0
+        assert (table.loc[small_week, "week_observed"].astype(str) == "<5").all()
+        assert table.loc[small_week, ["forecast_midp", "forecast_q"]].isna().all().all()
 
 
 # ============================================================================ command line
