@@ -130,7 +130,8 @@ def speed(n: int, surface: int) -> None:
     rng = np.random.default_rng(7)
     areas = voronoi_districts(rng.uniform(0, SIDE, (n, 2)))
     pop = rng.integers(500, 50_000, n).astype(float)
-    y = rng.poisson(pop * BASE_RATE).astype(float)
+    xy = np.column_stack([areas.centroid.x, areas.centroid.y])
+    y = rng.poisson(pop * BASE_RATE * true_risk(xy[:, 0], xy[:, 1])).astype(float)
     vm = VariogramModel("exponential", nugget=0.05, partial_sill=0.1, range=15.0)
     t0 = time.perf_counter()
     with warnings.catch_warnings():
