@@ -163,7 +163,7 @@ def test_poisson_correction_is_unbiased_under_constant_risk():
     for _ in range(400):
         y = rng.poisson(pop * 5e-3).astype(float)
         _, e, z = _standardised(y, pop)
-        npairs, wsum, wsq, _ = _lag_sums(xy, z, e, edges)
+        npairs, wsum, wsq, _, _ = _lag_sums(xy, z, e, edges)
         est.append((wsq - npairs) / (2 * wsum))
         raw.append(wsq / (2 * wsum))
     est, raw = np.mean(est, axis=0), np.mean(raw, axis=0)

@@ -228,10 +228,15 @@ def _standardised(y: np.ndarray, pop: np.ndarray):
     return m, e, y / e
 
 
-def _lag_sums(xy, z, e, edges, block: int = 512):
-    """Per distance class: pair count, sum of w, sum of w (z_i - z_j)^2, sum of distances (all i < j)."""
+def _lag_sums(xy, z, e, edges, block: int = 512, pairwise: bool = False):
+    """Per distance class: noise term, sum of w, sum of w (z_i - z_j)^2, sum of distances (all i < j).
+
+    The noise term is the pair count N(h) (regional correction) or, with ``pairwise``, the sum of
+    w_ij (z_i / e_i + z_j / e_j); the pair counts are returned separately as the fifth value.
+    """
     k = edges.size - 1
     npairs = np.zeros(k)
+    noise = np.zeros(k)
     wsum = np.zeros(k)
     wsq = np.zeros(k)
     dsum = np.zeros(k)
@@ -250,15 +255,19 @@ def _lag_sums(xy, z, e, edges, block: int = 512):
         cls = np.clip(np.searchsorted(edges, dd, side="right") - 1, 0, k - 1)
         w = e[i] * e[j] / (e[i] + e[j])
         npairs += np.bincount(cls, minlength=k)
+        if pairwise:
+            noise += np.bincount(cls, weights=w * (z[i] / e[i] + z[j] / e[j]), minlength=k)
         wsum += np.bincount(cls, weights=w, minlength=k)
         wsq += np.bincount(cls, weights=w * (z[i] - z[j]) ** 2, minlength=k)
         dsum += np.bincount(cls, weights=dd, minlength=k)
-    return npairs, wsum, wsq, dsum
+    if not pairwise:
+        noise = npairs.copy()
+    return noise, wsum, wsq, dsum, npairs
 
 
-def _fit_one(model, h, g, npairs, max_distance, scale):
-    """Least squares weighted by pair counts N(h); best of a few starting ranges."""
-    sw = np.sqrt(npairs / npairs.sum()) / scale
+def _fit_one(model, h, g, weight, max_distance, scale):
+    """Least squares weighted by each class's summed pair weights; best of a few starting ranges."""
+    sw = np.sqrt(weight / weight.sum()) / scale
 
     def resid(p):
         return sw * (g - p[0] - p[1] * (1.0 - _shape(model, h, p[2])))
@@ -286,6 +295,7 @@ def risk_variogram(
     n_lags: int = 12,
     max_distance: float | None = None,
     min_pairs: int = 30,
+    poisson_correction: str = "regional",
 ) -> RiskVariogram:
     """Population-weighted semivariogram of risk for count data, with a fitted model.
 
@@ -310,6 +320,12 @@ def risk_variogram(
     min_pairs : int, default=30
         Classes with fewer pairs are shown but left out of the fit (common
         practice, Journel and Huijbregts 1978).
+    poisson_correction : {"regional", "pairwise"}, default="regional"
+        ``"regional"``: subtract the Poisson term implied by the regional rate
+        m* (Monestiez et al. 2006; Goovaerts 2005). ``"pairwise"``: subtract
+        each pair's own unbiased noise estimate w_ij (z_i / e_i + z_j / e_j)
+        instead (see Notes); preferable when risk differs a lot between
+        sparsely and densely populated parts of the region.
 
     Returns
     -------
@@ -342,9 +358,19 @@ def risk_variogram(
     where N(h) is the number of pairs. The subtracted N(h) removes the
     expected Poisson contribution, since E[w_ij (z_i - z_j)^2] = 2 w_ij
     gamma(h) + 1. On the rate scale multiply by m*^2 (then w_ij = n_i n_j /
-    (n_i + n_j) and the subtracted term is N(h) m*). The a priori risk variance
+    (n_i + n_j) and the subtracted term is N(h) m*). The regional correction
+    assumes every area's Poisson variance is 1/e_i; it is rho_i / e_i for an
+    area of true relative risk rho_i, so where thinly populated areas have
+    lower (higher) risk than the region the correction is too large (small)
+    and the values are pulled down (up). Since E[y_i / e_i^2] = rho_i / e_i,
+    the pairwise correction sum_(i,j in h) w_ij (z_i / e_i + z_j / e_j)
+    removes the noise without that assumption (a plug-in of the observed
+    counts, exact in expectation for each pair; our variant, not taken from
+    the references). The a priori risk variance
     is sum e_i (z_i - 1)^2 / sum e - n / sum e. The model is fitted by
-    least squares weighted by the pair counts N(h) (``scipy.optimize.least_squares``,
+    least squares weighted by each class's sum of pair weights sum w_ij, which
+    tracks how much information (population) the class holds better than the
+    pair count N(h) (``scipy.optimize.least_squares``,
     bounded: nugget and partial sill in [0, 10 s], range in (0, 3 max_distance],
     s the largest experimental value). Cressie's (1985) weights N(h) / gamma(h)^2
     are not used: with Poisson-corrected values near zero they reward a curve
@@ -378,6 +404,7 @@ def risk_variogram(
     """
     func = "risk_variogram"
     check_choice(model, "model", func, ("auto", *MODELS))
+    check_choice(poisson_correction, "poisson_correction", func, ("regional", "pairwise"))
     n_lags = check_positive_int(n_lags, "n_lags", func, minimum=3)
     min_pairs = check_positive_int(min_pairs, "min_pairs", func)
     xy = _coordinates(areas, func)
@@ -392,9 +419,9 @@ def risk_variogram(
         max_distance = 0.5 * extent
     max_distance = check_interval(max_distance, "max_distance", func, low=0.0)
     edges = np.linspace(0.0, max_distance, n_lags + 1)
-    npairs, wsum, wsq, dsum = _lag_sums(xy, z, e, edges)
+    noise, wsum, wsq, dsum, npairs = _lag_sums(xy, z, e, edges, pairwise=poisson_correction == "pairwise")
     with np.errstate(invalid="ignore", divide="ignore"):
-        gamma = (wsq - npairs) / (2.0 * wsum)
+        gamma = (wsq - noise) / (2.0 * wsum)
         dist = np.where(npairs > 0, dsum / np.maximum(npairs, 1), 0.5 * (edges[:-1] + edges[1:]))
     used = npairs >= min_pairs
     lags = pd.DataFrame({"lower": edges[:-1], "upper": edges[1:], "distance": dist, "semivariance": gamma,
@@ -410,7 +437,7 @@ def risk_variogram(
             f"{np.nanmax(g):.3g}). Differences between areas are no larger than chance would give, so kriging "
             "has nothing to model; report the regional rate or a global empirical-Bayes estimate instead.")
     h = dist[used]
-    npu = npairs[used]
+    npu = wsum[used]
     scale = float(max(np.max(g), risk_var, 1e-12))
     rows = []
     fits = {}
@@ -429,7 +456,13 @@ def risk_variogram(
     notes = []
     structure = True
     share = c1 / (c0 + c1)
-    if share < 0.1:
+    if c0 + c1 < 0.05 * float(np.max(g)):
+        structure = False
+        notes.append(f"no spatial structure: the fitted sill ({c0 + c1:.3g}) is negligible next to the "
+                     f"experimental values (largest {np.max(g):.3g}); most classes are at or below zero after "
+                     "the Poisson correction. Kriged risks will sit at the regional rate with too-narrow "
+                     "intervals; prefer an empirical-Bayes or CAR estimate (or try poisson_correction='pairwise').")
+    elif share < 0.1:
         structure = False
         notes.append(f"no spatial structure: the structured part is {share:.0%} of the sill, so the curve is "
                      "flat; kriged risks will sit close to the regional rate and mean little more than a "
