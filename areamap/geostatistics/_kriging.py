@@ -17,12 +17,13 @@ from scipy.spatial import cKDTree
 
 from .._params import check_choice, check_interval, check_positive_int
 from ..errors import InputError, ModelError
+from ._kernels import MODEL_CODES, area_pair_covariance, point_area_covariance
 from ._discretize import AreaPoints, _geoms, discretize_areas, grid_cells, locate_points
 from ._variogram import RiskVariogram, VariogramModel, _counts, _standardised, risk_variogram
 
 __all__ = ["PoissonKrigingResult", "RiskSurface", "poisson_kriging", "ordinary_kriging"]
 
-_CHUNK_ELEMENTS = 4_000_000  # point-pair covariances evaluated per block (bounds memory to ~100 MB)
+_CHUNK_ELEMENTS = 4_000_000  # matrix entries gathered per block of surface cells (bounds memory to ~35 MB)
 
 
 # ----------------------------------------------------------------------------------------------------------
@@ -46,19 +47,14 @@ def _neighbourhoods(centres: np.ndarray, k1: int) -> np.ndarray:
     return nb
 
 
+def _model_args(model: VariogramModel) -> tuple:
+    return (MODEL_CODES[model.model], float(model.nugget), float(model.partial_sill), float(model.range))
+
+
 def _pair_covariance(points: AreaPoints, model: VariogramModel, a: np.ndarray, b: np.ndarray) -> np.ndarray:
     """Average point covariance between areas a[k] and b[k]: sum_p sum_q w_p w_q C(|u_p - u_q|)."""
-    X, W = points.coords, points.weights
-    p = W.shape[1]
-    out = np.empty(a.size)
-    step = max(1, _CHUNK_ELEMENTS // (p * p))
-    for s in range(0, a.size, step):  # blocks of pairs, not single areas
-        ia, ib = a[s:s + step], b[s:s + step]
-        dx = X[ia, :, None, 0] - X[ib, None, :, 0]
-        dy = X[ia, :, None, 1] - X[ib, None, :, 1]
-        c = model.covariance(np.sqrt(dx * dx + dy * dy))
-        out[s:s + step] = np.einsum("cp,cq,cpq->c", W[ia], W[ib], c, optimize=True)
-    return out
+    return area_pair_covariance(points.coords, points.weights, points.counts.astype(np.int64),
+                                a.astype(np.int64), b.astype(np.int64), *_model_args(model))
 
 
 def _neighbourhood_covariances(points: AreaPoints, model: VariogramModel, nb: np.ndarray) -> np.ndarray:
@@ -182,18 +178,17 @@ def _surface(points, model, nb, A, z, err, m, per, geoms, bounds, shape, policy,
     var = np.full(ny * nx, np.nan)
     n, k1 = nb.shape
     Ainv = np.linalg.inv(A)
-    X, W = points.coords, points.weights
-    p = W.shape[1]
-    step = max(1, _CHUNK_ELEMENTS // (k1 * p))
+    step = max(1, _CHUNK_ELEMENTS // (k1 * k1))
     c0 = model.sill
+    args = _model_args(model)
+    counts = points.counts.astype(np.int64)
+    px_all, py_all = gx.ravel(), gy.ravel()
     Cerr = A[:, :k1, :k1]
     for s in range(0, cells.size, step):  # blocks of cells
         cb = cells[s:s + step]
         own = owner[cb]
         nbs = nb[own]                                        # (B, k1)
-        dx = gx.ravel()[cb][:, None, None] - X[nbs, :, 0]     # (B, k1, P)
-        dy = gy.ravel()[cb][:, None, None] - X[nbs, :, 1]
-        cov = np.einsum("bkp,bkp->bk", W[nbs], model.covariance(np.sqrt(dx * dx + dy * dy)))
+        cov = point_area_covariance(px_all[cb], py_all[cb], nbs, points.coords, points.weights, counts, *args)
         b = np.concatenate([cov, np.ones((cb.size, 1))], axis=1)
         sol = np.einsum("bij,bj->bi", Ainv[own], b)
         lam, mu = sol[:, :k1], sol[:, k1]
