@@ -294,7 +294,7 @@ def test_poisson_term_matches_point_kriging_with_error_variance():
     y = rng.poisson(pop * 1e-2).astype(float)
     areas, pts = _single_point_areas(xy)
     res = poisson_kriging(y, pop, areas, variogram=MODEL, points=pts, neighbours=19, negative_weights="keep")
-    m, e, z = _standardised(y, pop)
+    _m, e, z = _standardised(y, pop)
     est, var, _ = ordinary_kriging(xy, z, xy, variogram=MODEL, error_variance=1 / e)
     assert_allclose(res.relative_risk, est, rtol=1e-9)  # same system, round-off only
     assert_allclose(res.relative_risk_sd**2, var, rtol=1e-7, atol=1e-12)
@@ -318,6 +318,7 @@ def test_coherence_area_to_point(smooth_data):
     assert shapely.intersects_xy(np.asarray(owner), f["x"], f["y"]).all()
     assert res.surface.transform == (0.25, 0.0, 0.0, 0.0, -0.25, 12.0)
     assert np.all(res.surface.variance >= 0)
+    assert "48 x 48 cells" in res.surface.summary() and "<pre>" in res.surface._repr_html_()
 
 
 def test_kriging_result_shape_and_invariances(smooth_data):
@@ -381,7 +382,7 @@ def test_plots(smooth_data):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ModelWarning)
         v = risk_variogram(y, n, areas, model="spherical")
-    fig, (a1, a2) = plt.subplots(1, 2)
+    _fig, (a1, a2) = plt.subplots(1, 2)
     assert variogram_plot(v, ax=a1) is a1
     gids = {c.get_gid() for c in a1.collections} | {ln.get_gid() for ln in a1.lines}
     assert {"experimental", "model", "variance"} <= gids
@@ -389,6 +390,8 @@ def test_plots(smooth_data):
     assert risk_surface_map(res, areas, ax=a2) is a2
     assert a2.images[0].get_gid() == "surface" and a2.images[0].get_array().shape == (30, 30)
     assert risk_surface_map(res.surface, areas, quantity="sd").images
+    with pytest.raises(ParameterError, match="'quantity' parameter of risk_surface_map"):
+        risk_surface_map(res, areas, quantity="variance")
     with pytest.raises(InputError, match="no surface"):
         risk_surface_map(poisson_kriging(y, n, areas, variogram=v), areas)
 

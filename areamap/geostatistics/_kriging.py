@@ -16,10 +16,16 @@ import shapely
 from scipy.spatial import cKDTree
 
 from .._params import check_choice, check_interval, check_positive_int
-from ..errors import InputError, ModelError
-from ._kernels import MODEL_CODES, area_pair_covariance, point_area_covariance
+from ..errors import InputError
 from ._discretize import AreaPoints, _geoms, discretize_areas, grid_cells, locate_points
-from ._variogram import RiskVariogram, VariogramModel, _counts, _standardised, risk_variogram
+from ._kernels import MODEL_CODES, area_pair_covariance, point_area_covariance
+from ._variogram import (
+    RiskVariogram,
+    VariogramModel,
+    _counts,
+    _standardised,
+    risk_variogram,
+)
 
 __all__ = ["PoissonKrigingResult", "RiskSurface", "poisson_kriging", "ordinary_kriging"]
 
@@ -159,6 +165,22 @@ class RiskSurface:
             return pd.Series(np.where(c > 0, s / np.maximum(c, 1), np.nan), index=self.ids,
                              name="surface_relative_risk")
 
+    def summary(self) -> str:
+        ny, nx = self.shape
+        inside = self.area >= 0
+        rr = self.relative_risk[inside]
+        return "\n".join([
+            f"Risk surface (area-to-point Poisson kriging): {ny} x {nx} cells, {int(inside.sum())} inside areas",
+            f"  transform {tuple(round(t, 6) for t in self.transform)}; bounds {self.bounds}",
+            f"  relative risk {np.nanmin(rr):.3g} - {np.nanmax(rr):.3g}; kriging sd up to "
+            f"{np.sqrt(np.nanmax(self.variance)):.3g}",
+            "  Each cell uses the kriging system of the area holding it; values over thinly populated areas are "
+            "interpolated, not observed.",
+        ])
+
+    def _repr_html_(self) -> str:
+        return f"<pre>{html.escape(self.summary())}</pre>"
+
     def to_frame(self) -> pd.DataFrame:
         """One row per cell inside an area: row, col, x, y, area id, relative_risk, sd, rate."""
         rr, cc = np.nonzero(self.area >= 0)
@@ -176,7 +198,7 @@ def _surface(points, model, nb, A, z, err, m, per, geoms, bounds, shape, policy,
     cells = np.flatnonzero(owner >= 0)
     rr = np.full(ny * nx, np.nan)
     var = np.full(ny * nx, np.nan)
-    n, k1 = nb.shape
+    _n, k1 = nb.shape
     Ainv = np.linalg.inv(A)
     step = max(1, _CHUNK_ELEMENTS // (k1 * k1))
     c0 = model.sill

@@ -7,6 +7,7 @@ from matplotlib.axes import Axes
 from matplotlib.colors import ListedColormap, TwoSlopeNorm
 
 from .._classify import palette_colours
+from .._params import check_choice
 from ..errors import InputError
 from ._kriging import PoissonKrigingResult, RiskSurface
 from ._variogram import RiskVariogram
@@ -103,9 +104,7 @@ def risk_surface_map(
         surface = surface.surface
     if not isinstance(surface, RiskSurface):
         raise InputError(f"risk_surface_map needs a RiskSurface; got {type(surface).__name__}.")
-    if quantity not in ("relative_risk", "sd"):
-        raise InputError(f"The 'quantity' parameter of risk_surface_map must be one of 'relative_risk', 'sd'. "
-                         f"Got {quantity!r} instead.")
+    check_choice(quantity, "quantity", "risk_surface_map", ("relative_risk", "sd"))
     ax = _ax(ax)
     xmin, ymin, xmax, ymax = surface.bounds
     if quantity == "relative_risk":

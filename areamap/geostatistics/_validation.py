@@ -148,7 +148,7 @@ def cross_validate_smoothers(
         raise InputError(f"{func} needs area polygons (GeoDataFrame/GeoSeries) with the area ids as index.")
     ids = pd.Index(areas.index)
     y, pop = _counts(cases, population, func, n=len(ids), index=ids)
-    m, e, z = _standardised(y, pop)
+    _m, e, _z = _standardised(y, pop)
     if kriging is None:
         kriging = poisson_kriging(y, pop, areas, neighbours=neighbours)
     elif not kriging.ids.equals(ids):
