@@ -37,7 +37,7 @@ import pandas as pd
 import shapely
 
 from areamap import build_graph, fit_car, poisson_gamma_eb, poisson_interval
-from areamap.geostatistics import discretize_areas, poisson_kriging, risk_variogram
+from areamap.geostatistics import cross_validate_smoothers, discretize_areas, poisson_kriging, risk_variogram
 from areamap.geostatistics._variogram import VariogramModel
 
 SIDE = 100.0
@@ -121,6 +121,16 @@ def accuracy(replicates: int, n: int) -> pd.DataFrame:
             "BYM2": (car.rr_mean * m, car.rr_low * m, car.rr_high * m, t_car),
             "raw rate": (np.maximum(y, 0.5) / pop, np.asarray(low) / pop, np.asarray(high) / pop, 0.0),
         }
+        if rep == 0:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                cv = cross_validate_smoothers(y, pop, areas, graph=graph, kriging=pk2, car_folds=10, seed=1)
+            # check the noise-corrected MSE against the error of the held-out predictions vs the true risk
+            e = pop * m
+            true_rr = truth / m
+            actual = {k: float(np.sum(e * (cv.predictions[k] - true_rr) ** 2) / e.sum()) for k in cv.scores.index}
+            print("held-out prediction (replicate 0; kriging with the pairwise correction):")
+            print(cv.scores.assign(mse_vs_truth=pd.Series(actual)).to_string(float_format=lambda x: f"{x:.4f}"))
         small = pop < np.median(pop)
         for name, (e, lo, hi, t) in est.items():
             err = np.log(e) - np.log(truth)

@@ -9,6 +9,8 @@ import numpy as np
 import pandas as pd
 import pytest
 import shapely
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from numpy.testing import assert_allclose
 from shapely.geometry import Polygon, box
 
@@ -429,3 +431,37 @@ def test_cross_validation_with_bym2(smooth_data):
     assert cv.scores.loc["bym2", "scheme"] == "3-fold"
     # held-out BYM2 predictions borrow from neighbours: better than the global mean on a smooth surface
     assert cv.scores.loc["bym2", "deviance"] < cv.scores.loc["global_eb", "deviance"]
+
+
+@settings(max_examples=30, deadline=None)
+@given(seed=st.integers(0, 2**31 - 1), model=st.sampled_from(["exponential", "spherical", "gaussian"]),
+       nugget=st.floats(0.0, 0.5))
+def test_ordinary_kriging_invariants(seed, model, nugget):
+    # textbook properties (Isaaks and Srivastava 1989, ch. 12): weights sum to one; with no nugget kriging is an
+    # exact interpolator with zero variance at the data; the variance is never negative
+    rng = np.random.default_rng(seed)
+    X = rng.uniform(0, 10, (8, 2))
+    v = rng.normal(size=8)
+    vm = VariogramModel(model, nugget=nugget, partial_sill=1.0, range=float(rng.uniform(2, 8)))
+    T = rng.uniform(0, 10, (5, 2))
+    est, var, w = ordinary_kriging(X, v, T, variogram=vm)
+    assert_allclose(w.sum(axis=1), 1.0, atol=1e-8)  # constraint, up to conditioning of the system
+    assert np.all(var > -1e-8)
+    if nugget == 0.0 and model != "gaussian":  # the Gaussian model without nugget is too ill-conditioned
+        est0, var0, _ = ordinary_kriging(X, v, X, variogram=vm)
+        assert_allclose(est0, v, atol=1e-8)
+        assert_allclose(var0, 0.0, atol=1e-8)
+
+
+def test_noise_corrected_mse_is_unbiased():
+    # analytic identity: E[e (z - p)^2] = e (rho - p)^2 + rho with z = y / e, y ~ Poisson(e rho); subtracting
+    # sum z / sum e leaves an unbiased estimate of the weighted MSE against the true risk (Monte Carlo check)
+    from areamap.geostatistics._kriging import cv_scores
+
+    rng = np.random.default_rng(8)
+    e = rng.uniform(0.5, 20.0, 200)
+    rho = np.exp(rng.normal(0, 0.4, 200))
+    p = np.full(200, 1.1)
+    target = np.sum(e * (rho - p) ** 2) / e.sum()
+    est = [cv_scores(rng.poisson(e * rho).astype(float), e, p)["risk_mse"] for _ in range(2000)]
+    assert_allclose(np.mean(est), target, rtol=0.03)  # Monte Carlo error about 1% of the target here

@@ -233,9 +233,10 @@ def cv_scores(y: np.ndarray, e: np.ndarray, pred_rr: np.ndarray) -> dict:
 
     ``deviance``: mean Poisson deviance 2[y log(y / mu) - (y - mu)], mu = e * pred;
     ``rmse``: expected-count-weighted RMSE of observed vs predicted relative risk;
-    ``risk_mse``: that weighted MSE minus the Poisson noise n / sum(e), an estimate of
-    the mean squared error against the true (unobserved) relative risk, valid because
-    each prediction leaves its own count out.
+    ``risk_mse``: that weighted MSE minus the Poisson noise sum(z) / sum(e), an unbiased
+    estimate of the weighted mean squared error against the true (unobserved) relative
+    risk rho, because each prediction leaves its own count out and
+    E[e (z - p)^2] = e (rho - p)^2 + rho with E[z] = rho.
     """
     ok = np.isfinite(pred_rr)
     y, e, p = y[ok], e[ok], np.maximum(pred_rr[ok], 1e-12)
@@ -245,7 +246,7 @@ def cv_scores(y: np.ndarray, e: np.ndarray, pred_rr: np.ndarray) -> dict:
     z = y / e
     mse = float(np.sum(e * (z - p) ** 2) / e.sum())
     return {"deviance": float(np.mean(2 * (t - (y - mu)))), "rmse": float(np.sqrt(mse)),
-            "risk_mse": mse - y.size / float(e.sum()), "areas": int(y.size)}
+            "risk_mse": mse - float(z.sum() / e.sum()), "areas": int(y.size)}
 
 
 @dataclass(frozen=True, eq=False)

@@ -134,8 +134,9 @@ def cross_validate_smoothers(
     therefore slightly pessimistic for the CAR model.
 
     Scores: mean Poisson deviance 2[y log(y/mu) - (y - mu)] with mu = e * prediction;
-    RMSE = sqrt(sum e (z - pred)^2 / sum e); noise-corrected MSE = RMSE^2 - n / sum e
-    (E[(z - pred)^2] = E[(Z - pred)^2] + 1/e when the prediction leaves y out).
+    RMSE = sqrt(sum e (z - pred)^2 / sum e); noise-corrected MSE = RMSE^2 - sum z / sum e,
+    unbiased for sum e (rho - pred)^2 / sum e because E[e (z - pred)^2] = e (rho - pred)^2 + rho
+    and E[z] = rho when the prediction leaves y out.
 
     References
     ----------
