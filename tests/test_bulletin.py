@@ -617,3 +617,22 @@ def test_kriged_risks_beside_car_estimates(tmp_path):
         without = analyse_period(plain)
     assert table["flag"].tolist() == without.areas["flag"].tolist()
     assert "kriged_rr" not in without.areas.columns and without.kriging is None
+
+
+@pytest.mark.slow
+def test_too_few_weeks_fall_back_to_the_window_model_with_a_note(tmp_path):
+    """With fewer weeks than [spacetime] min_weeks the flags use the summed-window model and say why."""
+    from areamap.bulletin import analyse_period
+    from areamap.demo import write_demo
+
+    config = write_demo(tmp_path / "demo")
+    config.write_text(config.read_text(encoding="utf-8") + "\n[spacetime]\nweeks = 60\nmin_weeks = 60\n",
+                      encoding="utf-8")
+    analysis = analyse_period(config)
+    info = analysis.run_info["spacetime"]
+    assert info["fitted"] is False and "min_weeks = 60" in info["note"]
+    assert any("min_weeks = 60" in n for n in analysis.run_info["notes"])
+    t = analysis.to_frame()
+    assert t["forecast_q"].isna().all() and not t["emerging"].any()
+    assert (t["flag"] == ((t["p_above_1"] >= 0.8) | (t["cluster"] == "High-High"))).all()
+    assert analysis.spacetime_fit is None
