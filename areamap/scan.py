@@ -359,6 +359,35 @@ def _select_zones(members, offsets, valid, obs, exp, total, xl, code, max_zones)
     return out
 
 
+def _candidate_llrs(cases, expected, locations, *, population=None, graph=None, max_share=0.1,
+                    direction="high") -> pd.DataFrame:
+    """Every candidate zone of a spatial scan with its LLR (for inspection and tests; no inference).
+
+    Columns: centre, members (tuple of ids, in the order they joined), observed, expected, llr.
+    """
+    func = "spatial_scan"
+    ids = cases.index if isinstance(cases, pd.Series) else None
+    c, ids = _vector(cases, ids, func, "cases")
+    e, ids = _vector(expected, ids, func, "expected")
+    ids = pd.RangeIndex(len(c)) if ids is None else ids
+    c = _counts(c, ids, func)
+    pop = _vector(population, ids, func, "population")[0] if population is not None else e
+    xy = _coordinates(locations, ids, func)
+    total = int(c.sum())
+    e = e * (total / e.sum())
+    members, offsets, valid = _zone_lists(xy, pop, max_share, graph, ids, func)
+    out = np.full((len(members), 1), np.nan)
+    _k.best_zones(members, offsets, valid, c[:, None], e[:, None], total, _k.xlogx_table(total),
+                  _DIRECTION_CODE[direction], np.zeros(len(ids), dtype=np.bool_), out)
+    rows = []
+    for i in range(len(ids)):
+        for pos in range(offsets[i], offsets[i + 1]):
+            if valid[pos]:
+                m = members[offsets[i]:pos + 1]
+                rows.append((ids[i], tuple(ids[m]), float(c[m].sum()), float(e[m].sum()), float(out[pos, 0])))
+    return pd.DataFrame(rows, columns=["centre", "members", "observed", "expected", "llr"])
+
+
 def _simulate(groups, n: int, nh: int, total: int, seed, replicates: int, run_block) -> np.ndarray:
     """Replicate maxima. ``groups``: per week (newest first) its total and district probabilities.
 
