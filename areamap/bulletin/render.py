@@ -67,13 +67,16 @@ def render_bulletin(analysis: PeriodAnalysis, folder: str | Path, *, public: boo
     t0 = time.perf_counter()
     figures, figure_notes = _figures(analysis.areas, analysis.graph, analysis.local_clusters.to_frame()
                                      .reindex(analysis.areas.index), cfg, analysis.period)
+    scan = _scan_section(analysis)
+    if scan is not None and scan["figure"] is not None:
+        figures.append(scan["figure"])
     timings["figures"] = round(time.perf_counter() - t0, 4)
     if started is not None:
         timings["total"] = round(time.perf_counter() - started, 3)
     _write_tables(analysis.areas, folder, public=public, suppress_below=cfg.output.suppress_below,
                   threshold_differs=analysis.threshold_differs)
     page = _render_html(cfg, analysis.areas, analysis.changes, analysis.morans_i, analysis.rules, figures,
-                        figure_notes, info, list(analysis.inputs))
+                        figure_notes, info, list(analysis.inputs), scan=scan)
     (folder / "index.html").write_text(page, encoding="utf-8")
     _write_json(folder / "run.json", info)
     return info
@@ -138,6 +141,8 @@ def _write_tables(areas, folder: Path, *, public: bool, suppress_below: int, thr
 
 # ============================================================================ html page
 _REFERENCES = (
+    "Abrams AM, Kleinman K, Kulldorff M (2010). Gumbel based p-value approximations for spatial scan "
+    "statistics. International Journal of Health Geographics 9:61.",
     "Anselin L (1995). Local indicators of spatial association—LISA. Geographical Analysis 27(2):93–115.",
     "Assunção RM, Reis EA (1999). A new proposal to adjust Moran's I for population density. "
     "Statistics in Medicine 18(16):2147–2162.",
@@ -149,6 +154,10 @@ _REFERENCES = (
     "Cohort Studies. IARC Scientific Publications No. 82, Lyon (indirect standardization, exact Poisson limits).",
     "Clayton D, Kaldor J (1987). Empirical Bayes estimates of age-standardized relative risks for use in "
     "disease mapping. Biometrics 43(3):671–681.",
+    "Kulldorff M (1997). A spatial scan statistic. Communications in Statistics – Theory and Methods "
+    "26(6):1481–1496.",
+    "Kulldorff M (2001). Prospective time periodic geographical disease surveillance using a scan statistic. "
+    "Journal of the Royal Statistical Society A 164(1):61–72.",
     "Leroux BG, Lei X, Breslow N (2000). Estimation of disease rates in small areas: a new mixed model for "
     "spatial dependence. In: Statistical Models in Epidemiology, the Environment, and Clinical Trials, 179–191.",
     "Moran PAP (1950). Notes on continuous stochastic phenomena. Biometrika 37(1/2):17–23.",
@@ -199,7 +208,11 @@ def _moran_sentence(statistic: float, expected: float, p: float) -> str:
             "(p >= 0.05); this does not rule out local clusters.")
 
 
-def _methods(cfg, rules: FlagRules, n_window: int) -> list[str]:
+def _scan_alpha(cfg, scan: dict | None) -> float | None:
+    return cfg.scan.alpha if scan is not None and scan.get("ran") else None
+
+
+def _methods(cfg, rules: FlagRules, n_window: int, *, scan_alpha: float | None = None) -> list[str]:
     st = cfg.standardization
     model = {"bym2": "BYM2 (Riebler et al. 2016), a reparameterised Besag–York–Mollié model whose mixing "
                      "parameter is the fraction of the variation that is spatially structured",
@@ -230,7 +243,9 @@ def _methods(cfg, rules: FlagRules, n_window: int) -> list[str]:
         f"Local clusters are found with {stat} on the same standardized ratios, with conditional-permutation "
         f"p-values ({cfg.clusters.permutations} permutations) adjusted by {adj} at level "
         f"{cfg.clusters.alpha:g}. Districts without neighbours are labelled 'no neighbours'.",
-        f"Flag rule: {rules.describe(adjust=cfg.clusters.adjust, alpha=cfg.clusters.alpha)} The probability "
+        *([_scan_method(cfg)] if scan_alpha is not None else []),
+        f"Flag rule: {rules.describe(adjust=cfg.clusters.adjust, alpha=cfg.clusters.alpha, scan_alpha=scan_alpha)} "
+        "The probability "
         "cut-off follows Richardson et al. (2004). Each flagged district's reason lists the rules it met; "
         "'new', 'continuing' and 'resolved' compare with the previous week in the history archive, and "
         "'periods flagged' counts consecutive flagged weeks.",
@@ -269,7 +284,7 @@ def _row_display(row, suppress_below: int) -> dict:
 
 
 def _render_html(cfg, areas, changes: FlagChanges, moran, rules: FlagRules, figures, figure_notes,
-                 run_info: dict, hashes: list[dict]) -> str:
+                 run_info: dict, hashes: list[dict], *, scan: dict | None = None) -> str:
     counts = changes.counts
     table = pd.DataFrame(areas.drop(columns="geometry"))
     flagged = table[table["flag"]].sort_values(["p_above_1", "rr"], ascending=False, kind="stable")
@@ -290,12 +305,15 @@ def _render_html(cfg, areas, changes: FlagChanges, moran, rules: FlagRules, figu
             "total_observed": f"{int(table['observed'].sum()):,}",
             "total_expected": f"{table['expected'].sum():,.1f}",
         },
-        "flag_rule_text": rules.describe(adjust=cfg.clusters.adjust, alpha=cfg.clusters.alpha),
+        "flag_rule_text": rules.describe(adjust=cfg.clusters.adjust, alpha=cfg.clusters.alpha,
+                                         scan_alpha=_scan_alpha(cfg, scan)),
+        "scan": scan,
         "figures": figures, "figure_notes": figure_notes,
         "flagged_rows": [_row_display(r, sb) for r in flagged.itertuples()],
         "resolved_rows": [{"area_id": str(i), "area_name": str(n)} for i, n in resolved["area_name"].items()],
         "suppress_below": sb,
-        "methods": [*_methods(cfg, rules, run_info["period"]["window_weeks"]), _model_sentence(run_info["model"])],
+        "methods": [*_methods(cfg, rules, run_info["period"]["window_weeks"], scan_alpha=_scan_alpha(cfg, scan)),
+                    _model_sentence(run_info["model"])],
         "references": _REFERENCES,
         "cautions": _cautions(sb),
         "provenance": {
@@ -378,3 +396,78 @@ def _figures(areas, graph, local, cfg, key: str) -> tuple[list[dict], list[str]]
         notes.append(f"{n_islands} district(s) have no neighbours in the graph; they take no part in the "
                      "cluster analysis ('no neighbours').")
     return out, notes
+
+
+# ============================================================================ scan statistic
+def _scan_method(cfg) -> str:
+    sc = cfg.scan
+    shape = ("circles around each district's centroid" if sc.zones == "circle"
+             else "connected groups of districts grown through the neighbour graph, nearest district first")
+    what = {"high": "raised", "low": "lowered", "both": "raised or lowered"}[sc.direction]
+    text = (f"The Poisson scan statistic (Kulldorff 1997) compares every candidate zone ({shape}, holding at most "
+            f"{sc.max_share:.0%} of the population) with the rest of the region and keeps the zone of {what} risk "
+            "with the largest likelihood ratio (the most likely cluster), then secondary zones that do not overlap "
+            f"it. Its p-value comes from {sc.replicates} Monte Carlo replicates of the cases redistributed over the "
+            f"districts under no cluster (seed {cfg.seed}), so it already accounts for having looked at every zone; "
+            "a Gumbel approximation (Abrams et al. 2010) gives p-values below 1/(replicates + 1).")
+    if sc.kind == "prospective":
+        base = ("each district's share of the earlier weeks' cases" if sc.baseline == "history"
+                else "the expected counts")
+        text += (f" Prospective form (Kulldorff 2001): zones are cylinders covering the last 1 to {sc.max_weeks} "
+                 f"weeks up to this week, judged against {base}; only clusters still going on are found. Run "
+                 "weekly, about one in 20 weeks gives p < 0.05 by chance.")
+    return text
+
+
+def _scan_section(analysis) -> dict | None:
+    """Context of the scan section (table rows, figure), or None when the scan is switched off."""
+    cfg = analysis.config
+    if not cfg.scan.enabled:
+        return None
+    note = analysis.run_info.get("scan", {}).get("note")
+    res = analysis.scan
+    if res is None:
+        return {"ran": False, "note": note, "rows": [], "figure": None}
+    sb = cfg.output.suppress_below
+    frame = res.to_frame()
+    names = analysis.areas["area_name"].astype(str)
+    rows = []
+    for rank, z in frame[frame["significant"]].iterrows():
+        obs = int(z.observed)
+        hide = sb > 1 and 1 <= obs < sb
+        member_names = [names.get(m, str(m)) for m in z.members]
+        rows.append({
+            "rank": str(rank), "centre": f"{names.get(z.centre, str(z.centre))}",
+            "n_districts": str(int(z.n_districts)),
+            "members": ", ".join(member_names[:12]) + (f" and {len(member_names) - 12} more"
+                                                       if len(member_names) > 12 else ""),
+            "weeks": (f"{z.first_week} to {z.last_week}" if res.kind == "space-time" else ""),
+            "observed": f"<{sb}" if hide else str(obs), "expected": _fmt(z.expected, 1),
+            "ratio_inside": "withheld" if hide else _fmt(z.ratio_inside),
+            "llr": _fmt(z.llr), "p_value": _fmt_p(z.p_value),
+            "p_gumbel": "n/a" if not np.isfinite(z.p_gumbel) else (f"{z.p_gumbel:.2g}" if z.p_gumbel >= 1e-12
+                                                                    else "<1e-12"),
+        })
+    figure = None
+    if len(res.llr):
+        import matplotlib.pyplot as plt
+
+        from ..scan import scan_map
+
+        gdf = analysis.areas.copy()
+        gdf["area_name"] = gdf["area_name"].map(_plain)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", UserWarning)
+            fig, ax = plt.subplots(figsize=(7.5, 6.5), layout="constrained")
+            scan_map(gdf, res, ax=ax, significant_only=False, period=analysis.period,
+                     source=_plain(cfg.data_source) if cfg.data_source else None)
+            src, w, h = _figure_uri(fig)
+        period = "the last 1 to {} weeks".format(cfg.scan.max_weeks) if res.kind == "space-time" else "the window"
+        figure = {"id": "scan", "src": src, "width": w, "height": h, "title": "Scan statistic zones",
+                  "caption": f"Observed / expected ratio over {period}, with the zones found by the scan statistic "
+                             f"outlined and numbered by rank: solid black when p < {cfg.scan.alpha:g}, dashed grey "
+                             "otherwise. A zone's edge comes from the candidate shapes, not from the cluster itself.",
+                  "alt": "Map of observed to expected ratios with the scan statistic zones outlined."}
+    return {"ran": True, "note": note, "rows": rows, "figure": figure, "kind": res.kind,
+            "n_zones": len(res.llr), "n_significant": int(res.significant.sum()), "alpha": cfg.scan.alpha,
+            "replicates": cfg.scan.replicates, "min_p": _fmt_p(1 / (cfg.scan.replicates + 1))}
