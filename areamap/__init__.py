@@ -93,6 +93,7 @@ from .rates import (
     rolling_window_sum,
     standardized_ratio,
 )
+from .scan import SCAN_DIRECTIONS, ScanResult, prospective_scan, scan_map, spatial_scan
 from .smoothing import (
     PoissonGammaResult,
     SmoothedRates,
@@ -131,6 +132,8 @@ __all__ = [
     "CAUTION_TEXT", "CLUSTER_COLOURS", "Classification", "classify", "natural_breaks", "relative_risk_breaks",
     "choropleth", "raw_beside_smoothed", "bivariate_map", "exceedance_map", "cluster_map", "funnel_limits",
     "funnel_plot", "moran_scatterplot", "shrinkage_plot", "ranked_interval_plot", "add_map_furniture",
+    # scan statistic
+    "SCAN_DIRECTIONS", "ScanResult", "spatial_scan", "prospective_scan", "scan_map",
     # CAR models
     "CarPriors", "CarFit", "fit_car",
     # bulletin and history

@@ -269,13 +269,24 @@ def best_zones(members, offsets, valid, counts, expected, total, xl, direction, 
 
 @njit(cache=True)
 def _maxima_range(members, offsets, valid, counts, expected, total, xl, direction, first, last, out):
+    """Replicate maxima over the zones of centres [first, last) (updates ``out`` in place).
+
+    Scanning for high risk, a zone can only raise ``out[b]`` when its count reaches ``need``, the
+    smallest integer c with LLR(c, e) > t, where t = min_b out[b]. LLR(c, e) falls as e grows
+    (for c > e) and t only rises, so ``need`` never falls along a centre's list: a zone whose largest
+    count over the block is below the previous ``need`` is skipped without any logarithm.
+    """
     nh = counts.shape[1]
     nb = counts.shape[2]
     acc = np.zeros((nh, nb), dtype=np.int32)
+    amax = np.zeros(nh, dtype=np.int64)
+    need = np.zeros(nh, dtype=np.int64)
     eacc = np.zeros(nh)
+    t = out.min()
     for i in range(first, last):
         acc[:, :] = 0
         eacc[:] = 0.0
+        need[:] = 0
         for pos in range(offsets[i], offsets[i + 1]):
             m = members[pos]
             ok = valid[pos]
@@ -283,26 +294,44 @@ def _maxima_range(members, offsets, valid, counts, expected, total, xl, directio
                 eacc[h] += expected[m, h]
                 row = counts[m, h]
                 a = acc[h]
+                top = 0
                 for b in range(nb):
-                    a[b] += row[b]
-                if not ok:
-                    continue
+                    v = a[b] + row[b]
+                    a[b] = v
+                    top = max(top, v)
+                amax[h] = top
+            if not ok:
+                continue
+            for h in range(nh):
                 e = eacc[h]
                 rest = total - e
                 if e <= 0.0 or rest <= 0.0:
                     continue
-                le = np.log(e)
-                lr = np.log(rest)
+                a = acc[h]
                 if direction > 0:
-                    # only zones with more cases than expected (c > e) count
-                    lo = int(np.floor(e)) + 1
+                    if amax[h] < need[h]:
+                        continue
+                    le = np.log(e)
+                    lr = np.log(rest)
+                    c = max(need[h], int(np.floor(e)) + 1)
+                    while c <= total and xl[c] - c * le + xl[total - c] - (total - c) * lr <= t:
+                        c += 1
+                    need[h] = c
+                    if amax[h] < c:
+                        continue
+                    changed = False
                     for b in range(nb):
                         c = a[b]
-                        if c >= lo:
+                        if c >= need[h]:
                             v = xl[c] - c * le + xl[total - c] - (total - c) * lr
                             if v > out[b]:
                                 out[b] = v
+                                changed = True
+                    if changed:
+                        t = out.min()
                 else:
+                    le = np.log(e)
+                    lr = np.log(rest)
                     for b in range(nb):
                         c = a[b]
                         if c == e or (direction < 0 and c > e):

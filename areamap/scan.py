@@ -22,9 +22,9 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 import shapely
+from matplotlib import patheffects
 from matplotlib.axes import Axes
 from matplotlib.lines import Line2D
-from matplotlib import patheffects
 
 from . import _scan_kernels as _k
 from ._params import check_choice, check_interval, check_positive_int
@@ -180,10 +180,10 @@ class ScanResult:
         st = self.settings
         what = "space-time (prospective)" if self.kind == "space-time" else "spatial"
         lines = [
-            f"Poisson {what} scan for {self.direction} risk: {len(self.ids)} districts, "
-            f"{self.n_zones:,} candidate zones ({st.get('zone_shape', 'circle')} zones, up to "
-            f"{st.get('max_share', 0.1):.0%} of the population), {int(self.total_cases)} cases, "
-            f"{st.get('replicates', 0)} replicates (seed {st.get('seed')}).",
+            (f"Poisson {what} scan for {self.direction} risk: {len(self.ids)} districts, "
+             f"{self.n_zones:,} candidate zones ({st.get('zone_shape', 'circle')} zones, up to "
+             f"{st.get('max_share', 0.1):.0%} of the population), {int(self.total_cases)} cases, "
+             f"{st.get('replicates', 0)} replicates (seed {st.get('seed')})."),
         ]
         if not len(self.llr):
             lines.append("  No zone departs from the expected counts in the scanned direction.")
