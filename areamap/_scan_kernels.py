@@ -21,9 +21,11 @@ logarithm of a count.
 from __future__ import annotations
 
 import math
+import os
+from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
-from numba import njit, prange
+from numba import njit
 
 _TIE = 1e-12  # relative tolerance for equal distances from a centre (common practice)
 
@@ -62,16 +64,13 @@ def _cut_rows(order, dist, pop, cap, full_row):
     return length, valid
 
 
-@njit(cache=True, parallel=True)
-def _nearest_sorted(coords, first, last, kmax):
-    """The ``kmax`` nearest points of each centre in [first, last), nearest first, the centre itself first."""
+@njit(cache=True, nogil=True)
+def _nearest_rows(coords, first, kmax, order, dist):
+    """The ``kmax`` nearest points of centres first.. (one row each), nearest first, the centre itself first."""
     n = coords.shape[0]
-    m = last - first
-    order = np.empty((m, kmax), dtype=np.int64)
-    dist = np.empty((m, kmax))
-    for r in prange(m):
+    d = np.empty(n)
+    for r in range(order.shape[0]):
         c = first + r
-        d = np.empty(n)
         for j in range(n):
             dx = coords[j, 0] - coords[c, 0]
             dy = coords[j, 1] - coords[c, 1]
@@ -83,9 +82,35 @@ def _nearest_sorted(coords, first, last, kmax):
         else:
             cand = np.arange(n)
         srt = cand[np.argsort(d[cand], kind="mergesort")][:kmax]
-        order[r] = srt
         for j in range(kmax):
+            order[r, j] = srt[j]
             dist[r, j] = math.sqrt(max(d[srt[j]], 0.0))
+
+
+def _threads() -> int:
+    return max(1, min(4, os.cpu_count() or 1))
+
+
+def _in_threads(work, n: int, k: int) -> None:
+    """Run ``work(j, first, last)`` over [0, n) split into ``k`` slices, one thread each (the compiled
+    work releases the GIL)."""
+    cuts = [(n * j) // k for j in range(k + 1)]
+    if k == 1:
+        work(0, 0, n)
+        return
+    with ThreadPoolExecutor(max_workers=k) as pool:
+        for f in [pool.submit(work, j, cuts[j], cuts[j + 1]) for j in range(k)]:
+            f.result()
+
+
+def _nearest_sorted(coords, first, last, kmax):
+    order = np.empty((last - first, kmax), dtype=np.int64)
+    dist = np.empty((last - first, kmax))
+
+    def work(j, a, b):
+        _nearest_rows(coords, first + a, kmax, order[a:b], dist[a:b])
+
+    _in_threads(work, last - first, min(_threads(), max(last - first, 1)))
     return order, dist
 
 
@@ -267,7 +292,7 @@ def best_zones(members, offsets, valid, counts, expected, total, xl, direction, 
     return best, best_len, best_h
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def _maxima_range(members, offsets, valid, counts, expected, total, xl, direction, first, last, out):
     """Replicate maxima over the zones of centres [first, last) (updates ``out`` in place).
 
@@ -341,24 +366,18 @@ def _maxima_range(members, offsets, valid, counts, expected, total, xl, directio
                             out[b] = v
 
 
-@njit(cache=True, parallel=True)
 def replicate_maxima(members, offsets, valid, counts, expected, total, xl, direction):
     """Largest LLR over all zones for each replicate: ``counts[district, height, replicate]``.
 
-    Centres are split into chunks run in parallel; the maximum does not
-    depend on the split, so results are the same on any number of threads.
+    Centres are split into slices run in threads; the maximum does not depend on the split, so
+    results are the same on any number of threads.
     """
     n = len(offsets) - 1
-    nb = counts.shape[2]
-    n_chunks = 16
-    outs = np.zeros((n_chunks, nb))
-    for j in prange(n_chunks):
-        first = (n * j) // n_chunks
-        last = (n * (j + 1)) // n_chunks
-        _maxima_range(members, offsets, valid, counts, expected, total, xl, direction, first, last, outs[j])
-    out = np.zeros(nb)
-    for j in range(n_chunks):
-        for b in range(nb):
-            if outs[j, b] > out[b]:
-                out[b] = outs[j, b]
-    return out
+    k = min(_threads(), max(n, 1))
+    outs = np.zeros((k, counts.shape[2]))
+
+    def work(j, a, b):
+        _maxima_range(members, offsets, valid, counts, expected, total, xl, direction, a, b, outs[j])
+
+    _in_threads(work, n, k)
+    return outs.max(axis=0)

@@ -366,15 +366,7 @@ def _candidate_llrs(cases, expected, locations, *, population=None, graph=None, 
     Columns: centre, members (tuple of ids, in the order they joined), observed, expected, llr.
     """
     func = "spatial_scan"
-    ids = cases.index if isinstance(cases, pd.Series) else None
-    c, ids = _vector(cases, ids, func, "cases")
-    e, ids = _vector(expected, ids, func, "expected")
-    ids = pd.RangeIndex(len(c)) if ids is None else ids
-    c = _counts(c, ids, func)
-    pop = _vector(population, ids, func, "population")[0] if population is not None else e
-    xy = _coordinates(locations, ids, func)
-    total = int(c.sum())
-    e = e * (total / e.sum())
+    ids, c, e, pop, xy, total = _spatial_inputs(cases, expected, locations, population, func)
     members, offsets, valid = _zone_lists(xy, pop, max_share, graph, ids, func)
     out = np.full((len(members), 1), np.nan)
     _k.best_zones(members, offsets, valid, c[:, None], e[:, None], total, _k.xlogx_table(total),
@@ -551,22 +543,26 @@ def spatial_scan(
     """
     func = "spatial_scan"
     replicates, seed, max_zones = _check_common(func, max_share, direction, replicates, seed, alpha, max_zones)
-    ids = cases.index if isinstance(cases, pd.Series) else None
-    c, ids = _vector(cases, ids, func, "cases")
-    e, ids = _vector(expected, ids, func, "expected")
-    if ids is None:
-        ids = pd.RangeIndex(len(c))
-    c = _counts(c, ids, func)
-    pop = _vector(population, ids, func, "population")[0] if population is not None else e
-    xy = _coordinates(locations, ids, func)
-    _check_expected(c[:, None], e[:, None], ids, func)
-    total = int(c.sum())
-    e = e * (total / e.sum())
+    ids, c, e, pop, xy, total = _spatial_inputs(cases, expected, locations, population, func)
     groups = [(total, _probabilities(e))]
     return _scan(kind="spatial", ids=ids, xy=xy, pop=pop, obs=c[:, None], exp=e[:, None], groups=groups,
                  total=total, week_labels=(), graph=graph, max_share=max_share, direction=direction,
                  replicates=replicates, seed=seed, alpha=alpha, max_zones=max_zones, func=func,
                  extra_settings={})
+
+
+def _spatial_inputs(cases, expected, locations, population, func):
+    """Checked per-district arrays: ids, counts, expected scaled to the total, population, coordinates, total."""
+    ids = cases.index if isinstance(cases, pd.Series) else None
+    c, ids = _vector(cases, ids, func, "cases")
+    e, ids = _vector(expected, ids, func, "expected")
+    ids = pd.RangeIndex(len(c)) if ids is None else ids
+    c = _counts(c, ids, func)
+    pop = _vector(population, ids, func, "population")[0] if population is not None else e
+    xy = _coordinates(locations, ids, func)
+    _check_expected(c[:, None], e[:, None], ids, func)
+    total = int(c.sum())
+    return ids, c, e * (total / e.sum()), pop, xy, total
 
 
 def _probabilities(e: np.ndarray) -> np.ndarray:

@@ -354,3 +354,27 @@ def test_replicate_kernel_equals_observed_search_on_each_replicate(direction):
         obs = np.ascontiguousarray(counts[:, :, b], dtype=np.int64)
         best = k.best_zones(members, offsets, valid, obs, exp, total, xl, code, taken, np.zeros((0, 2)))[0]
         assert fast[b] == pytest.approx(best.max(), rel=1e-12, abs=1e-12)  # same sums, same formula
+
+
+def test_graph_zones_equal_circles_on_a_delaunay_graph():
+    """On a Delaunay triangulation every point has a neighbour closer to any given target point (greedy routing
+    succeeds; Bose & Morin 2004, from memory), so the nearest point outside a circle always touches it and
+    graph-grown zones coincide with circles: an independent check of the growth kernel."""
+    import scipy.sparse as sp
+    from scipy.spatial import Delaunay
+
+    from areamap import _scan_kernels as k
+
+    rng = np.random.default_rng(8)
+    xy = rng.uniform(0, 10, (300, 2))
+    pop = rng.uniform(100, 900, 300)
+    tri = Delaunay(xy).simplices
+    a = np.concatenate([tri[:, 0], tri[:, 1], tri[:, 2]])
+    b = np.concatenate([tri[:, 1], tri[:, 2], tri[:, 0]])
+    adj = sp.csr_array((np.ones(2 * a.size), (np.r_[a, b], np.r_[b, a])), shape=(300, 300))
+    adj.sum_duplicates()
+    m1, o1, v1 = k.circle_lists(xy, pop, 0.2 * pop.sum())
+    m2, o2, v2 = k.graph_lists(xy, pop, 0.2 * pop.sum(), adj.indptr, adj.indices)
+    assert v1.all() and v2.all()  # no distance ties among random points
+    np.testing.assert_array_equal(o1, o2)
+    np.testing.assert_array_equal(m1, m2)
