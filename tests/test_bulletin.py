@@ -586,3 +586,26 @@ def test_analyse_period_writes_nothing_and_reproduces_the_bulletin(demo_run):
     assert mine["cluster"].tolist() == published["cluster"].tolist()
     assert mine["flag"].tolist() == published["flag"].astype(str).str.lower().eq("true").tolist()
     assert "Analysis of 2026-W47" in analysis.summary()
+
+
+@pytest.mark.slow
+def test_prospective_scan_in_the_analysis_finds_the_planted_cluster(demo_run):
+    """The demo plants 8 districts at relative risk 2.5 in its last 4 weeks (truth.csv): the prospective scan of
+    the last 1..4 weeks must put most of them in its most likely cylinder."""
+    import dataclasses
+
+    from areamap.bulletin import analyse_period
+    from areamap.config import load_config
+
+    cfg = load_config(demo_run["config"])
+    cfg = dataclasses.replace(cfg, scan=dataclasses.replace(cfg.scan, kind="prospective", replicates=99))
+    analysis = analyse_period(cfg)
+    res = analysis.scan
+    assert res.kind == "space-time" and res.significant[0]
+    truth = pd.read_csv(demo_run["folder"] / "truth.csv", dtype={"district_id": str}).set_index("district_id")
+    planted = set(truth.index[truth["in_planted_cluster"] == 1])
+    assert len(planted & set(res.to_frame().loc[1, "members"])) >= 6
+    assert analysis.run_info["scan"]["kind"] == "prospective"
+    assert analysis.run_info["scan"]["baseline"] == "history"
+    inside = analysis.areas.loc[list(res.to_frame().loc[1, "members"])]
+    assert inside["flag_reason"].str.contains("inside significant scan zone 1", regex=False).all()
