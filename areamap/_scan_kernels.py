@@ -145,6 +145,12 @@ def circle_lists(coords: np.ndarray, pop: np.ndarray, cap: float):
     return members, offsets, valid
 
 
+@njit(cache=True, inline="always")
+def _swap(hd, hn, i, j):
+    hd[i], hd[j] = hd[j], hd[i]
+    hn[i], hn[j] = hn[j], hn[i]
+
+
 @njit(cache=True)
 def _grow_one(c, coords, pop, cap, indptr, indices, stamp, out, write):
     """Grow a connected zone from centre ``c``: repeatedly add the nearest district adjacent to it.
@@ -176,12 +182,10 @@ def _grow_one(c, coords, pop, cap, indptr, indices, stamp, out, write):
             s = lft
             if lft + 1 < size and hd[lft + 1] < hd[lft]:
                 s = lft + 1
-            if hd[s] < hd[i]:
-                hd[i], hd[s] = hd[s], hd[i]
-                hn[i], hn[s] = hn[s], hn[i]
-                i = s
-            else:
+            if hd[s] >= hd[i]:
                 break
+            _swap(hd, hn, i, s)
+            i = s
         acc += pop[node]
         if acc > cap:
             break
@@ -202,12 +206,10 @@ def _grow_one(c, coords, pop, cap, indptr, indices, stamp, out, write):
             size += 1
             while j > 0:
                 par = (j - 1) // 2
-                if hd[j] < hd[par]:
-                    hd[j], hd[par] = hd[par], hd[j]
-                    hn[j], hn[par] = hn[par], hn[j]
-                    j = par
-                else:
+                if hd[j] >= hd[par]:
                     break
+                _swap(hd, hn, j, par)
+                j = par
     return length
 
 

@@ -434,6 +434,7 @@ class PeriodAnalysis:
             + ("" if self.changes.previous_available else " (not in the archive)") + ".",
             f"Global Moran's I (EB-standardized ratios): {m['statistic']:.3f} "
             f"(expected {m['expected']:.3f}, permutation p = {m['p_value']:.3g}).",
+            *_scan_lines(self.run_info),
         ])
 
     def _repr_html_(self) -> str:
@@ -817,6 +818,22 @@ def _run_scan(cfg, study, key, observed, expected, population, boundaries, graph
     per_week = expected / max(cfg.period.window_weeks, 1)
     return prospective_scan(weekly[weeks], per_week, boundaries, max_weeks=sc.max_weeks, baseline=sc.baseline,
                             **common), None
+
+
+def _scan_lines(run_info: dict) -> list[str]:
+    """One summary line on the scan statistic (none when it is switched off)."""
+    info = run_info.get("scan") or {}
+    if not info.get("enabled"):
+        return []
+    if "zones_found" not in info:
+        return [f"Scan statistic: not run ({info.get('note', 'no result')})"]
+    zones = info["zones_found"]
+    if not zones:
+        return ["Scan statistic: no zone departs from the expected counts."]
+    z = zones[0]
+    return [f"Scan statistic ({info['kind']}): {info['significant_zones']} zone(s) with p < {info['alpha']:g}; "
+            f"most likely zone {z['n_districts']} district(s) around {z['centre']}, observed {z['observed']:.0f} vs "
+            f"expected {z['expected']:.1f}, p = {z['p_value']:.3g}."]
 
 
 def _scan_summary(cfg, result, note) -> dict:

@@ -27,7 +27,7 @@ import pandas as pd
 
 from ..archive import FlagChanges, HistoryArchive
 from ..errors import InputError, ParameterError, format_examples
-from .analysis import Progress, _as_config, _input_files, _Steps, analyse_period
+from .analysis import Progress, _as_config, _input_files, _scan_lines, _Steps, analyse_period
 from .render import render_bulletin
 
 __all__ = ["OUTPUT_FILES", "BulletinResult", "run_bulletin"]
@@ -105,6 +105,7 @@ class BulletinResult:
             + ("" if self.changes.previous_available else " (not in the archive)") + ".",
             f"Global Moran's I (EB-standardized ratios): {m['statistic']:.3f} "
             f"(expected {m['expected']:.3f}, permutation p = {m['p_value']:.3g}).",
+            *_scan_lines(self.run_info),
             f"Outputs: {self.out}" + (" (public: small counts suppressed)" if self.public else ""),
         ])
 
