@@ -295,46 +295,54 @@ def best_zones(members, offsets, valid, counts, expected, total, xl, direction, 
 
 
 @njit(cache=True, nogil=True)
-def _maxima_range(members, offsets, valid, counts, expected, total, xl, direction, first, last, out):
+def _maxima_range(members, offsets, valid, counts, expected, total, xl, direction, nh, nb, first, last, out):
     """Replicate maxima over the zones of centres [first, last) (updates ``out`` in place).
+
+    ``counts[district, h * nb + b]``: count of replicate ``b`` in the cylinder of height ``h``, so one
+    contiguous row per district is added for all heights and replicates at once.
 
     Scanning for high risk, a zone can only raise ``out[b]`` when its count reaches ``need``, the
     smallest integer c with LLR(c, e) > t, where t = min_b out[b]. LLR(c, e) falls as e grows
     (for c > e) and t only rises, so ``need`` never falls along a centre's list: a zone whose largest
     count over the block is below the previous ``need`` is skipped without any logarithm.
     """
-    nh = counts.shape[1]
-    nb = counts.shape[2]
-    acc = np.zeros((nh, nb), dtype=np.int32)
-    amax = np.zeros(nh, dtype=np.int64)
+    width = nh * nb
+    acc = np.zeros(width, dtype=np.int32)
+    amax = np.zeros(nh, dtype=np.int32)
     need = np.zeros(nh, dtype=np.int64)
     eacc = np.zeros(nh)
     t = out.min()
     for i in range(first, last):
-        acc[:, :] = 0
+        acc[:] = 0
         eacc[:] = 0.0
         need[:] = 0
         for pos in range(offsets[i], offsets[i + 1]):
             m = members[pos]
-            ok = valid[pos]
+            row = counts[m]
+            for q in range(width):
+                acc[q] += row[q]
             for h in range(nh):
                 eacc[h] += expected[m, h]
-                row = counts[m, h]
-                a = acc[h]
-                top = 0
-                for b in range(nb):
-                    v = a[b] + row[b]
-                    a[b] = v
-                    top = max(top, v)
-                amax[h] = top
-            if not ok:
+            if not valid[pos]:
                 continue
+            if direction > 0:
+                skip = True
+                for h in range(nh):
+                    top = np.int32(0)
+                    base = h * nb
+                    for b in range(nb):
+                        top = max(top, acc[base + b])
+                    amax[h] = top
+                    if top >= need[h]:
+                        skip = False
+                if skip:
+                    continue
             for h in range(nh):
                 e = eacc[h]
                 rest = total - e
                 if e <= 0.0 or rest <= 0.0:
                     continue
-                a = acc[h]
+                base = h * nb
                 if direction > 0:
                     if amax[h] < need[h]:
                         continue
@@ -348,7 +356,7 @@ def _maxima_range(members, offsets, valid, counts, expected, total, xl, directio
                         continue
                     changed = False
                     for b in range(nb):
-                        c = a[b]
+                        c = acc[base + b]
                         if c >= need[h]:
                             v = xl[c] - c * le + xl[total - c] - (total - c) * lr
                             if v > out[b]:
@@ -360,7 +368,7 @@ def _maxima_range(members, offsets, valid, counts, expected, total, xl, directio
                     le = np.log(e)
                     lr = np.log(rest)
                     for b in range(nb):
-                        c = a[b]
+                        c = acc[base + b]
                         if c == e or (direction < 0 and c > e):
                             continue
                         v = xl[c] - c * le + xl[total - c] - (total - c) * lr
@@ -376,10 +384,12 @@ def replicate_maxima(members, offsets, valid, counts, expected, total, xl, direc
     """
     n = len(offsets) - 1
     k = min(_threads(), max(n, 1))
-    outs = np.zeros((k, counts.shape[2]))
+    nh, nb = counts.shape[1], counts.shape[2]
+    flat = np.ascontiguousarray(counts, dtype=np.int32).reshape(counts.shape[0], nh * nb)
+    outs = np.zeros((k, nb))
 
     def work(j, a, b):
-        _maxima_range(members, offsets, valid, counts, expected, total, xl, direction, a, b, outs[j])
+        _maxima_range(members, offsets, valid, flat, expected, total, xl, direction, nh, nb, a, b, outs[j])
 
     _in_threads(work, n, k)
     return outs.max(axis=0)
