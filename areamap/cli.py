@@ -97,7 +97,7 @@ def _cmd_history(args: argparse.Namespace) -> int:
     from .errors import ArchiveError
 
     config = load_config(args.config)
-    archive = HistoryArchive(config.output.archive)
+    archive = HistoryArchive(config.output.archive_path)
     if not archive.path.exists():
         raise ArchiveError(
             f"No history archive at {archive.path} yet. Run 'areamap bulletin {args.config}' first."

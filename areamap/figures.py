@@ -53,6 +53,28 @@ def _overlaps(boxes: np.ndarray) -> bool:
     return bool(hit.any())
 
 
+def _nudge_apart(ax: Axes, texts: list) -> None:
+    """Move key labels that collide with an earlier one up or down by their height (a few tries each).
+
+    Keys are short, so a small move keeps them on or next to their district; the label's anchor point
+    stays recorded in ``xy`` and only the drawn position changes.
+    """
+    renderer = ax.figure.canvas.get_renderer()
+    placed: list[np.ndarray] = []
+    to_data = ax.transData.inverted()
+    for t in texts:
+        box = np.array(t.get_window_extent(renderer).extents)
+        h = box[3] - box[1]
+        x0, y0 = ax.transData.transform(t.xy)
+        for dy in (0.0, 0.9 * h, -0.9 * h, 1.8 * h, -1.8 * h):
+            trial = box + np.array([0, dy, 0, dy])
+            if not any(_overlaps(np.vstack([p_, trial])) for p_ in placed):
+                break
+        if dy:
+            t.set_position(tuple(to_data.transform((x0, y0 + dy))))
+        placed.append(box + np.array([0, dy, 0, dy]))
+
+
 def locator_map(
     gdf,
     highlight,
@@ -151,6 +173,8 @@ def locator_map(
                 t.remove()
             use = "keys"
             drawn = put(keys)
+    if use == "keys" and len(drawn) > 1:
+        _nudge_apart(ax, drawn)
     ax.set_gid(f"locator-{use}")
     if title:
         ax.set_title(_plain(title), loc="left", fontsize=10)
