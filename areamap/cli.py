@@ -103,6 +103,9 @@ def _cmd_history(args: argparse.Namespace) -> int:
             f"No history archive at {archive.path} yet. Run 'areamap bulletin {args.config}' first."
         )
     table = archive.history(area=args.area, last=args.last)
+    if not table.empty:
+        windows = {p: (archive.settings(p) or {}).get("window_weeks") for p in table["period"].unique()}
+        table.insert(1, "window_weeks", table["period"].map(windows))
     print(_history_text(table, area=args.area, last=args.last))
     return 0
 
@@ -113,7 +116,7 @@ def _history_text(table, *, area, last: int) -> str:
     head = f"History ({who}, last {last} archived period(s)):"
     if table.empty:
         return head + "\n(no flagged districts in these periods)"
-    cols = ["period", "area_id", "area_name", "observed", "expected", "rr", "p_above_1", "cluster",
+    cols = ["period", "window_weeks", "area_id", "area_name", "observed", "expected", "rr", "p_above_1", "cluster",
             "flag", "flag_change", "weeks_flagged"]
     shown = table[[c for c in cols if c in table.columns]].copy()
     for c, digits in (("expected", 1), ("rr", 2), ("p_above_1", 2)):

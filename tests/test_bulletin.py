@@ -450,7 +450,9 @@ def test_history_command(demo_copy, demo_run, capsys):
     assert main(["history", str(demo_copy / "run.toml"), "--last", "1"]) == 0
     text = capsys.readouterr().out
     flagged_now = set(t.index[t["flag"]].astype(str))
-    shown = {ln.split()[1] for ln in text.splitlines() if ln.startswith("2026-W47")}
+    shown = {ln.split()[2] for ln in text.splitlines() if ln.startswith("2026-W47")}
+    assert "window_weeks" in text.splitlines()[1]  # the window of each period is shown
+    assert all(ln.split()[1] == "1" for ln in text.splitlines() if ln.startswith("2026-W47"))
     assert shown == flagged_now
     assert main(["history", str(demo_copy / "run.toml"), "--area", "NOPE"]) == 2
     assert "not in the history archive" in capsys.readouterr().err
