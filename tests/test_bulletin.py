@@ -210,7 +210,8 @@ def test_numbers_are_consistent(demo_run):
     # internal reference: expected counts add up to the observed total (indirect standardization identity)
     np.testing.assert_allclose(t["expected"].sum(), t["observed"].sum(), rtol=1e-9)  # CSV keeps 10 digits
     np.testing.assert_allclose(t["sir"], t["observed"] / t["expected"], rtol=1e-8)  # same rounding
-    # exact Poisson limits (Garwood 1936; chi-square form, e.g. Breslow & Day 1987 vol. II, eq. 2.11)
+    # exact Poisson limits (Garwood 1936; chi-square form as in Breslow & Day 1987 vol. II, eq. 2.11 -- the
+    # equation number is from memory)
     o = t["observed"].to_numpy()
     low = np.where(o > 0, stats.chi2.ppf(0.025, 2 * o) / 2, 0.0) / t["expected"]
     high = stats.chi2.ppf(0.975, 2 * (o + 1)) / 2 / t["expected"]
@@ -311,7 +312,8 @@ def test_run_json_provenance(demo_run):
 def test_flags_follow_the_rule_and_the_history(demo_run):
     t = pd.read_csv(demo_run["out"] / "areas.csv", dtype={"area_id": str}).set_index("area_id")
     prev = demo_run["previous_csv"].set_index("area_id")
-    rule = (t["p_above_1"] >= 0.8) | (t["cluster"] == "High-High")  # the demo's [flags]: defaults
+    # the demo's [flags] are the defaults; the 0.8 cut-off is the decision band of Richardson et al. (2004)
+    rule = (t["p_above_1"] >= 0.8) | (t["cluster"] == "High-High")
     assert (t["flag"] == rule).all()
     assert (t.loc[t["flag"], "flag_reason"].str.len() > 0).all()
     assert (t.loc[~t["flag"], "flag_reason"].fillna("") == "").all()

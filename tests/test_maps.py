@@ -377,7 +377,8 @@ def test_bivariate_legend_has_nine_cells_with_right_colours(strip):
 
 
 def test_bivariate_rendered_uncertain_districts_are_pale(strip):
-    """Render the map and read each district's pixel colour: uncertain ones (P between 0.2 and 0.8)
+    """Render the map and read each district's pixel colour: uncertain ones (P between 0.2 and 0.8, the
+    decision bands of Richardson et al. 2004)
     must come out lighter (CIELAB L*) than every certain one, whatever their risk class."""
     import matplotlib.pyplot as plt
 
@@ -400,6 +401,7 @@ def test_bivariate_rendered_uncertain_districts_are_pale(strip):
 
 
 def test_exceedance_map_marks_richardson_bands(strip):
+    # decision bands 0.2 / 0.8: Richardson, Thomson, Best & Elliott (2004), Environ. Health Perspect. 112:1016
     p = [0.1, 0.5, 0.85, 0.96, 0.02, np.nan]
     ax = exceedance_map(strip, p)
     texts = _legend_texts(ax)
