@@ -119,7 +119,7 @@ def svg_paths(geometries, *, width: float = 640.0, precision: int = 1, simplify:
     >>> from shapely.geometry import box
     >>> d, size = svg_paths([box(0, 0, 2, 1)], width=100)
     >>> d[0], size
-    ('M100,50L100,0L0,0L0,50Z', (100.0, 50.0))
+    ('M100.0,50.0L100.0,0.0L0.0,0.0L0.0,50.0Z', (100.0, 50.0))
     """
     g = np.asarray(geometries, dtype=object)
     if not len(g):
@@ -132,21 +132,29 @@ def svg_paths(geometries, *, width: float = 640.0, precision: int = 1, simplify:
     moved = shapely.transform(g, lambda xy: np.c_[(xy[:, 0] - minx) * scale, (maxy - xy[:, 1]) * scale])
     if tol > 0:
         moved = shapely.simplify(moved, tol, preserve_topology=True)
-    out = []
-    for geom in moved:
-        parts = []
-        for poly in shapely.get_parts(geom):
-            if shapely.get_type_id(poly) != 3:
-                continue
-            for ring in [poly.exterior, *poly.interiors]:
-                xy = np.round(np.asarray(ring.coords)[:-1], precision)
-                if len(xy) < 3:
-                    continue
-                fmt = (lambda v: f"{v:.{precision}f}".rstrip("0").rstrip(".")) if precision else (
-                    lambda v: str(int(v)))
-                pts = [f"{fmt(x)},{fmt(y)}" for x, y in xy]
-                parts.append("M" + "L".join(pts) + "Z")
-        out.append("".join(parts))
+    # all rings of all polygons at once: coordinates -> "x,y" strings -> one "M...Z" per ring -> one path per area
+    parts, part_area = shapely.get_parts(moved, return_index=True)
+    poly = shapely.get_type_id(parts) == 3
+    parts, part_area = parts[poly], part_area[poly]
+    rings, ring_part = shapely.get_rings(parts, return_index=True)
+    coords, coord_ring = shapely.get_coordinates(rings, return_index=True)
+    last = np.r_[coord_ring[1:] != coord_ring[:-1], True]  # the closing point repeats the first: drop it
+    coords, coord_ring = coords[~last], coord_ring[~last]
+    fmt = f"%.{int(precision)}f"
+    xy = np.char.add(np.char.add(np.char.mod(fmt, np.round(coords[:, 0], precision)), ","),
+                     np.char.mod(fmt, np.round(coords[:, 1], precision)))
+    counts = np.bincount(coord_ring, minlength=len(rings))
+    keep = counts >= 3
+    ring_text = np.array(["M" + "L".join(seg) + "Z" for seg in np.split(xy.tolist(), np.cumsum(counts)[:-1])],
+                         dtype=object) if len(rings) else np.array([], dtype=object)
+    ring_area = part_area[ring_part]
+    out = [""] * len(g)
+    order = np.argsort(ring_area[keep], kind="stable")
+    areas_k = ring_area[keep][order]
+    texts_k = ring_text[keep][order]
+    bounds = np.searchsorted(areas_k, np.arange(len(g) + 1))
+    for i in np.flatnonzero(np.diff(bounds)):
+        out[i] = "".join(texts_k[bounds[i]:bounds[i + 1]])
     return out, (float(width), height)
 
 
@@ -243,11 +251,12 @@ def explorable_map(
     svg = [f'<svg class="explore-svg" viewBox="0 0 {w:g} {h:g}" role="group" '
            f'aria-label="{esc(title)}" xmlns="http://www.w3.org/2000/svg">']
     order = np.argsort(marked, kind="stable")  # marked districts last, so their outline is on top
+    name_list = names.tolist()
     for i in order:
         cls = "district is-marked" if marked[i] else "district"
+        nm = esc(name_list[i])
         svg.append(f'<path class="{cls}" d="{paths[i]}" fill="{esc(str(fill[i]))}" data-id="{esc(ids[i])}" '
-                   f'tabindex="0" role="button" aria-label="{esc(names.iloc[i])}"><title>{esc(names.iloc[i])}'
-                   "</title></path>")
+                   f'tabindex="0" role="button" aria-label="{nm}"><title>{nm}</title></path>')
     svg.append("</svg>")
 
     legend_html = "".join(
@@ -261,16 +270,19 @@ def explorable_map(
             return "" if not np.isfinite(v) else repr(float(v))
         return str(v)
 
-    body = []
-    for i, rid_ in enumerate(ids):
-        cells = "".join(
-            f'<td data-sort="{esc(sort_attr(sort_values.iloc[i][k]))}">{esc(str(text.iloc[i][k]))}</td>'
-            for k in keys)
-        body.append(f'<tr data-id="{esc(rid_)}"><th scope="row" data-sort="{esc(names.iloc[i])}">'
-                    f"{esc(names.iloc[i])}</th>{cells}</tr>")
+    # column-wise: escaped cell texts and sort keys per column, then one row string per district
+    text_cols = [[esc(str(v)) for v in text[k].tolist()] for k in keys]
+    sort_cols = [[esc(sort_attr(v)) for v in sort_values[k].tolist()] for k in keys]
+    name_esc = [esc(v) for v in names.tolist()]
+    body = [
+        f'<tr data-id="{esc(rid_)}"><th scope="row" data-sort="{name_esc[i]}">{name_esc[i]}</th>'
+        + "".join(f'<td data-sort="{sc[i]}">{tc[i]}</td>' for tc, sc in zip(text_cols, sort_cols)) + "</tr>"
+        for i, rid_ in enumerate(ids)
+    ]
+    raw_text = [[str(v) for v in text[k].tolist()] for k in keys]
     data = {
         "columns": [{"key": k, "label": lab} for k, lab in columns],
-        "rows": [{"id": ids[i], "name": names.iloc[i], "text": [str(text.iloc[i][k]) for k in keys]}
+        "rows": [{"id": ids[i], "name": name_list[i], "text": [col[i] for col in raw_text]}
                  for i in range(len(ids))],
         "initial": None if initial is None else str(initial),
     }
