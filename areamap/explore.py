@@ -8,11 +8,12 @@
 * a panel that shows the selected district's name and numbers;
 * a table of all districts (collapsed in a ``<details>`` element by default)
   whose column headers sort it, for screen readers and for copying;
-* the data as JSON inside ``<script type="application/json">`` and a plain
-  script of about sixty lines, loaded from nowhere.
+* a plain inline script of about sixty lines, loaded from nowhere, that
+  reads each district's numbers from its table row (so they are in the page
+  once).
 
-Every value is written as text (``textContent``), never as markup, and the
-JSON has ``<``, ``>`` and ``&`` escaped, so district names cannot inject markup.
+Every value is HTML-escaped in the table and copied as text
+(``textContent``), never as markup, so district names cannot inject markup.
 """
 
 from __future__ import annotations
@@ -33,26 +34,28 @@ _SCRIPT = """
 (function () {
   var root = document.getElementById(%(root)s);
   if (!root) { return; }
-  var data = JSON.parse(root.querySelector('script[type="application/json"]').textContent);
-  var byId = {};
-  data.rows.forEach(function (r) { byId[r.id] = r; });
+  var table = root.querySelector('table.explore-table');
+  var tbody = table.tBodies[0];
+  var labels = Array.prototype.map.call(table.tHead.rows[0].cells, function (c) { return c.textContent; });
+  var rowById = {};
+  Array.prototype.forEach.call(tbody.rows, function (r) { rowById[r.getAttribute('data-id')] = r; });
   var panel = root.querySelector('.explore-panel');
   var current = null;
   function show(id) {
-    var r = byId[id];
+    var r = rowById[id];
     if (!r) { return; }
     if (current) { current.classList.remove('is-selected'); }
     current = root.querySelector('path[data-id="' + CSS.escape(id) + '"]');
     if (current) { current.classList.add('is-selected'); }
-    panel.querySelector('.explore-name').textContent = r.name;
+    panel.querySelector('.explore-name').textContent = r.cells[0].textContent;
     var dl = panel.querySelector('dl');
     while (dl.firstChild) { dl.removeChild(dl.firstChild); }
-    data.columns.forEach(function (c, i) {
-      var dt = document.createElement('dt'); dt.textContent = c.label;
-      var dd = document.createElement('dd'); dd.textContent = r.text[i];
-      dd.setAttribute('data-key', c.key);
+    for (var i = 1; i < r.cells.length; i++) {
+      var dt = document.createElement('dt'); dt.textContent = labels[i];
+      var dd = document.createElement('dd'); dd.textContent = r.cells[i].textContent;
+      dd.setAttribute('data-key', r.cells[i].getAttribute('data-key'));
       dl.appendChild(dt); dl.appendChild(dd);
-    });
+    }
     panel.setAttribute('data-id', id);
   }
   root.querySelectorAll('path[data-id]').forEach(function (p) {
@@ -64,8 +67,6 @@ _SCRIPT = """
       if (e.key === 'Enter' || e.key === ' ') { show(id); e.preventDefault(); }
     });
   });
-  var table = root.querySelector('table.explore-table');
-  var tbody = table.tBodies[0];
   table.querySelectorAll('thead button').forEach(function (b) {
     b.addEventListener('click', function () {
       var col = parseInt(b.getAttribute('data-col'), 10);
@@ -83,15 +84,10 @@ _SCRIPT = """
       rows.forEach(function (r) { tbody.appendChild(r); });
     });
   });
-  if (data.rows.length) { show(data.initial || data.rows[0].id); }
+  var first = root.getAttribute('data-initial') || (tbody.rows.length ? tbody.rows[0].getAttribute('data-id') : null);
+  if (first) { show(first); }
 })();
 """
-
-
-def _escape_json(obj) -> str:
-    """JSON safe inside an HTML <script> element: <, > and & written as \\u escapes (HTML spec, 4.12.1.3)."""
-    text = json.dumps(obj, ensure_ascii=False, allow_nan=False)
-    return text.replace("&", "\\u0026").replace("<", "\\u003c").replace(">", "\\u003e")
 
 
 def svg_paths(geometries, *, width: float = 640.0, precision: int = 1, simplify: float | None = None):
@@ -244,7 +240,8 @@ def explorable_map(
     names = gdf[name_column].astype(str) if name_column in gdf.columns else pd.Series(
         gdf.index.astype(str), index=gdf.index)
     ids = [str(i) for i in gdf.index]
-    paths, (w, h) = svg_paths(gdf.geometry, width=width)
+    # whole SVG units are enough detail at display size for large regions and keep the page small
+    paths, (w, h) = svg_paths(gdf.geometry, width=width, precision=1 if len(gdf) <= 2000 else 0)
     esc = html.escape
     rid = esc(element_id)
 
@@ -274,20 +271,16 @@ def explorable_map(
     text_cols = [[esc(str(v)) for v in text[k].tolist()] for k in keys]
     sort_cols = [[esc(sort_attr(v)) for v in sort_values[k].tolist()] for k in keys]
     name_esc = [esc(v) for v in names.tolist()]
+    key_esc = [esc(k) for k in keys]
     body = [
         f'<tr data-id="{esc(rid_)}"><th scope="row" data-sort="{name_esc[i]}">{name_esc[i]}</th>'
-        + "".join(f'<td data-sort="{sc[i]}">{tc[i]}</td>' for tc, sc in zip(text_cols, sort_cols)) + "</tr>"
+        + "".join(f'<td data-key="{k}" data-sort="{sc[i]}">{tc[i]}</td>'
+                  for k, tc, sc in zip(key_esc, text_cols, sort_cols)) + "</tr>"
         for i, rid_ in enumerate(ids)
     ]
-    raw_text = [[str(v) for v in text[k].tolist()] for k in keys]
-    data = {
-        "columns": [{"key": k, "label": lab} for k, lab in columns],
-        "rows": [{"id": ids[i], "name": name_list[i], "text": [col[i] for col in raw_text]}
-                 for i in range(len(ids))],
-        "initial": None if initial is None else str(initial),
-    }
     return "\n".join([
-        f'<section class="explore" id="{rid}" aria-labelledby="{rid}-title">',
+        f'<section class="explore" id="{rid}" aria-labelledby="{rid}-title"'
+        + (f' data-initial="{esc(str(initial))}">' if initial is not None else ">"),
         f'<h2 id="{rid}-title">{esc(title)}</h2>',
         f'<p class="explore-hint">{esc(hint)}</p>',
         '<div class="explore-body">',
@@ -299,7 +292,6 @@ def explorable_map(
         f'<thead><tr><th scope="col"><button type="button" data-col="0">{esc(name_label)}</button></th>'
         f"{head}</tr></thead>",
         f"<tbody>{''.join(body)}</tbody></table></div></details>",
-        f'<script type="application/json">{_escape_json(data)}</script>',
         f"<script>{_SCRIPT % {'root': json.dumps(element_id)}}</script>",
         "</section>",
     ])

@@ -141,9 +141,9 @@ def test_hostile_text_renders_literally(page):
     assert driver.find_element(By.ID, "title").text == HOSTILE_TITLE
     assert driver.find_element(By.ID, "region").text == HOSTILE_REGION
     assert driver.find_elements(By.CSS_SELECTOR, "#region i") == []
-    # the only scripts are the page's own: a JSON data block and the explorable map's inline script
+    # the only script is the page's own: the explorable map's inline script
     kinds = driver.execute_script("return Array.from(document.scripts).map(s => [s.type, s.src]);")
-    assert kinds == [["application/json", ""], ["", ""]]
+    assert kinds == [["", ""]]
     assert "owned" != driver.title and HOSTILE_TITLE in driver.title
     # the hostile name reaches the explorable map as text too
     path = driver.find_element(By.CSS_SELECTOR, f'#explore path[data-id="{target}"]')

@@ -335,10 +335,11 @@ def test_html_suppresses_small_counts_and_escapes(demo_run):
                        html, flags=re.S)
     assert len(cells) == demo_run["result"].run_info["flags"]["total"]
     assert not {"1", "2", "3", "4"} & set(cells)
-    # the explorable map suppresses the same way: its JSON rows and table cells never show 1-4
-    assert not re.search(r'<td data-sort="[^"]*">[1-4]</td>', html)
-    # the only scripts are the page's own two inline blocks (data and behaviour); nothing is loaded
-    assert html.count("<script") == 2 and "<script src" not in html
+    # the explorable map's table suppresses the same way: observed cells never show 1-4
+    assert not re.search(r'<td data-key="observed" data-sort="[^"]*">[1-4]</td>', html)
+    assert re.search(r'<td data-key="observed" data-sort="">&lt;5</td>', html)
+    # the only script is the page's own inline one; nothing is loaded
+    assert html.count("<script") == 1 and "<script src" not in html
 
 
 @pytest.mark.slow
