@@ -180,7 +180,9 @@ def _build_parser() -> argparse.ArgumentParser:
     p.add_argument("config", help="path to the run configuration (TOML), e.g. run.toml")
     p.add_argument("--period", default=None,
                    help="ISO week ending the analysed window, e.g. 2026-W47, or 'latest' (default: [period] week)")
-    p.add_argument("--out", default=None, help="output folder (default: 'bulletin' beside the configuration)")
+    p.add_argument("--out", default=None,
+                   help="output folder (default: 'bulletin' beside the configuration); each period goes into its own "
+                        "subfolder (OUT/2026-W47/) and OUT/latest.html points to the newest")
     p.add_argument("--public", action="store_true",
                    help="also suppress small counts in areas.csv and areas.gpkg (the HTML always does)")
     p.add_argument("--quiet", action="store_true", help="print nothing on success (for scheduled runs)")
