@@ -36,7 +36,7 @@ _SCRIPT = """
   if (!root) { return; }
   var table = root.querySelector('table.explore-table');
   var tbody = table.tBodies[0];
-  var labels = Array.prototype.map.call(table.tHead.rows[0].cells, function (c) { return c.textContent; });
+  var heads = table.tHead.rows[0].cells;
   var rowById = {};
   Array.prototype.forEach.call(tbody.rows, function (r) { rowById[r.getAttribute('data-id')] = r; });
   var panel = root.querySelector('.explore-panel');
@@ -51,9 +51,9 @@ _SCRIPT = """
     var dl = panel.querySelector('dl');
     while (dl.firstChild) { dl.removeChild(dl.firstChild); }
     for (var i = 1; i < r.cells.length; i++) {
-      var dt = document.createElement('dt'); dt.textContent = labels[i];
+      var dt = document.createElement('dt'); dt.textContent = heads[i].textContent;
       var dd = document.createElement('dd'); dd.textContent = r.cells[i].textContent;
-      dd.setAttribute('data-key', r.cells[i].getAttribute('data-key'));
+      dd.setAttribute('data-key', heads[i].getAttribute('data-key'));
       dl.appendChild(dt); dl.appendChild(dd);
     }
     panel.setAttribute('data-id', id);
@@ -76,7 +76,9 @@ _SCRIPT = """
       th.setAttribute('aria-sort', asc ? 'ascending' : 'descending');
       var rows = Array.prototype.slice.call(tbody.rows);
       rows.sort(function (a, b2) {
-        var x = a.cells[col].getAttribute('data-sort'), y = b2.cells[col].getAttribute('data-sort');
+        var ca = a.cells[col], cb = b2.cells[col];
+        var x = ca.hasAttribute('data-sort') ? ca.getAttribute('data-sort') : ca.textContent;
+        var y = cb.hasAttribute('data-sort') ? cb.getAttribute('data-sort') : cb.textContent;
         var nx = parseFloat(x), ny = parseFloat(y), d;
         if (!isNaN(nx) && !isNaN(ny)) { d = nx - ny; } else { d = x < y ? -1 : (x > y ? 1 : 0); }
         return asc ? d : -d;
@@ -259,23 +261,22 @@ def explorable_map(
     legend_html = "".join(
         f'<li><span class="swatch" style="background:{esc(c)}"></span>{esc(lab)}</li>' for c, lab in legend)
     head = "".join(
-        f'<th scope="col"><button type="button" data-col="{j + 1}">{esc(lab)}</button></th>'
-        for j, (_, lab) in enumerate(columns))
+        f'<th scope="col" data-key="{esc(k)}"><button type="button" data-col="{j + 1}">{esc(lab)}</button></th>'
+        for j, (k, lab) in enumerate(columns))
 
     def sort_attr(v) -> str:
         if isinstance(v, int | float | np.integer | np.floating):
-            return "" if not np.isfinite(v) else repr(float(v))
+            return "" if not np.isfinite(v) else f"{float(v):.7g}"
         return str(v)
 
     # column-wise: escaped cell texts and sort keys per column, then one row string per district
     text_cols = [[esc(str(v)) for v in text[k].tolist()] for k in keys]
     sort_cols = [[esc(sort_attr(v)) for v in sort_values[k].tolist()] for k in keys]
     name_esc = [esc(v) for v in names.tolist()]
-    key_esc = [esc(k) for k in keys]
     body = [
-        f'<tr data-id="{esc(rid_)}"><th scope="row" data-sort="{name_esc[i]}">{name_esc[i]}</th>'
-        + "".join(f'<td data-key="{k}" data-sort="{sc[i]}">{tc[i]}</td>'
-                  for k, tc, sc in zip(key_esc, text_cols, sort_cols)) + "</tr>"
+        f'<tr data-id="{esc(rid_)}"><th scope="row">{name_esc[i]}</th>'
+        + "".join(f"<td>{tc[i]}</td>" if sc[i] == tc[i] else f'<td data-sort="{sc[i]}">{tc[i]}</td>'
+                  for tc, sc in zip(text_cols, sort_cols)) + "</tr>"
         for i, rid_ in enumerate(ids)
     ]
     return "\n".join([
