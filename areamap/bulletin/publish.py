@@ -164,8 +164,9 @@ def point_to_latest(root: str | Path) -> Path | None:
     return target
 
 
-def _check_root(root: Path, inputs: list[tuple[str, Path]]) -> None:
-    """The output root of per-period folders must be a folder that holds none of the inputs' folders."""
+def _check_root(root: Path) -> None:
+    """The output root of per-period folders must be a folder (or not exist yet); the period folder
+    itself is checked like a plain output folder once the period is known."""
     if root.exists() and not root.is_dir():
         raise InputError(f"The output path {root} exists and is a file. Give a folder for the bulletin (--out DIR).")
 
@@ -276,7 +277,7 @@ def run_bulletin(
     protected = [*_input_files(cfg), ("history archive", Path(cfg.output.archive_path))]
     per_period = cfg.output.per_period
     if per_period:
-        _check_root(root, protected)
+        _check_root(root)
     else:
         _check_out_dir(root, protected)
 
