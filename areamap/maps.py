@@ -986,7 +986,7 @@ def cluster_map(
     >>> g = gpd.GeoDataFrame(geometry=[box(0, 0, 1, 1), box(1, 0, 2, 1)], crs=27700)
     >>> ax = cluster_map(g, ["High-High", "not significant"])
     >>> leg = next(a for a in ax.child_axes if a.get_gid() == "cluster-legend")
-    >>> [t.get_text() for t in leg.texts][:3]
+    >>> [t.get_text() for t in leg.texts][1:4]
     ['districts', 'high, in a high group', '1']
     """
     func = "cluster_map"

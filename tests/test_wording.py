@@ -22,6 +22,12 @@ def test_public_wording_replaces_notation_only():
     assert pub.text("reason_probability", cut_pct="80%", p_pct="93%") == "likely raised: at least 80% probability (93%)"
 
 
+def test_cluster_names_match_the_map_legend():
+    from areamap.maps import CLUSTER_STYLE
+
+    assert load_wording().cluster_names() == {k: v["name"] for k, v in CLUSTER_STYLE.items()}
+
+
 def test_dates_iso_by_default_and_configurable():
     assert load_wording().date("2026-11-16") == "2026-11-16"  # ISO 8601 calendar date
     assert load_wording(date_format="%d.%m.%Y").date("2026-11-16") == "16.11.2026"

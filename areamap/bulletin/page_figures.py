@@ -86,7 +86,7 @@ def bulletin_figures(analysis, words: Wording) -> tuple[list[dict], list[str]]:
     import matplotlib.pyplot as plt
 
     from .. import maps
-    from ..maps import CLUSTER_STYLE, _map_aspect
+    from ..maps import _map_aspect
 
     cfg = analysis.config
     gdf = analysis.areas.copy()
@@ -99,7 +99,7 @@ def bulletin_figures(analysis, words: Wording) -> tuple[list[dict], list[str]]:
     out: list[dict] = []
     notes: list[str] = []
     rr, sir, p = gdf["rr"], gdf["sir"], gdf["p_above_1"]
-    cluster_names = {k: v["name"] for k, v in CLUSTER_STYLE.items()}
+    cluster_names = words.cluster_names()
 
     with warnings.catch_warnings():
         # figure-level notes (e.g. areas left out) are repeated in the captions drawn by the maps

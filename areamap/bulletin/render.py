@@ -273,8 +273,7 @@ def _rate_text(rate, low, high, hidden: bool, words, digits: int = 1) -> tuple[s
 def _area_rows(table: pd.DataFrame, words, rules: FlagRules, adjust: str, suppress_below: int,
                threshold_differs: bool) -> pd.DataFrame:
     """Display texts per district (suppressed where the page suppresses), one column per field."""
-    from ..maps import CLUSTER_STYLE
-
+    cluster_names = words.cluster_names()
     status = {"new": words("status_new"), "continuing": words("status_continuing"),
               "resolved": words("status_resolved"), "not flagged": words("status_not_flagged")}
     rows = []
@@ -300,7 +299,7 @@ def _area_rows(table: pd.DataFrame, words, rules: FlagRules, adjust: str, suppre
             "rr": _fmt(r.rr), "rr_ci": f"({_fmt(r.rr_low)}–{_fmt(r.rr_high)})",
             "prob": (_pct(r.p_above_1) if words.public else _fmt_prob(r.p_above_1).lstrip("="))
             if np.isfinite(r.p_above_1) else "n/a",
-            "cluster": CLUSTER_STYLE.get(str(r.cluster), {}).get("name", str(r.cluster)),
+            "cluster": cluster_names.get(str(r.cluster), str(r.cluster)),
             "status": status.get(str(r.flag_change), str(r.flag_change)),
             "status_key": str(r.flag_change),
             "weeks_flagged": str(int(r.weeks_flagged)), "change": change,

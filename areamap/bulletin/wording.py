@@ -91,6 +91,12 @@ STRINGS: dict[str, str] = {
     "reason_probability": "P(RR>{t}) = {p} ≥ {cut}",
     "reason_cluster": "High-High cluster ({adjust} {q})",
     "withheld": "withheld",
+    "cluster_high_high": "high, in a high group",
+    "cluster_low_low": "low, in a low group",
+    "cluster_high_low": "high, neighbours low",
+    "cluster_low_high": "low, neighbours high",
+    "cluster_not_significant": "no local pattern",
+    "cluster_no_neighbours": "not assessed (no neighbours)",
     # trend
     "trend_title": "Cases per week in the region",
     "trend_caption": ("Cases reported per ISO week in the whole region, {first} to {last}; the analysed period is "
@@ -303,6 +309,12 @@ class Wording:
 
     def cluster_rule(self) -> str:
         return _PUBLIC_CLUSTER_RULE
+
+    def cluster_names(self) -> dict[str, str]:
+        """Names of the local-cluster categories (keys: the published quadrant terms of the data)."""
+        from ..autocorrelation import CLUSTER_LABELS
+
+        return {c: self.text("cluster_" + c.lower().replace("-", "_").replace(" ", "_")) for c in CLUSTER_LABELS}
 
 
 def _fields(template: str) -> set[str]:
