@@ -10,6 +10,7 @@
 
 from .analysis import (
     AREA_COLUMNS,
+    KRIGING_COLUMNS,
     FlagRules,
     PeriodAnalysis,
     analyse_period,
@@ -22,6 +23,7 @@ from .render import render_bulletin
 
 __all__ = [
     "AREA_COLUMNS",
+    "KRIGING_COLUMNS",
     "OUTPUT_FILES",
     "BulletinResult",
     "FlagRules",

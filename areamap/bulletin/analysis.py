@@ -51,6 +51,7 @@ from ..errors import AreamapError, AreamapWarning, InputError, ParameterError, f
 
 __all__ = [
     "AREA_COLUMNS",
+    "KRIGING_COLUMNS",
     "FlagRules",
     "PeriodAnalysis",
     "analyse_period",
@@ -68,6 +69,8 @@ AREA_COLUMNS = (
 
 #: Columns added after ``rate_high`` when a standard population is configured.
 STANDARDIZED_RATE_COLUMNS = ("std_rate_per_100k", "std_rate_low", "std_rate_high")
+#: Columns added to the area table when ``[smoothing] kriging`` is on (after p_above_1 / p_above_threshold).
+KRIGING_COLUMNS = ("kriged_rr", "kriged_rr_low", "kriged_rr_high")
 
 
 #: Columns withheld (blank) in public tables for areas whose count is suppressed:
@@ -367,6 +370,9 @@ class PeriodAnalysis:
     settings : dict
         The settings that make periods comparable (window, model, flag rule),
         as recorded in the history archive.
+    kriging : PoissonKrigingResult or None
+        Area-to-area Poisson kriging of the window's counts when ``[smoothing] kriging``
+        is on (None when off, or when the risk semivariogram showed nothing to model).
     """
 
     config: object
@@ -386,6 +392,7 @@ class PeriodAnalysis:
     run_info: dict = field(repr=False)
     weekly: object = field(default=None, repr=False)
     settings: dict = field(default_factory=dict, repr=False)
+    kriging: object = field(default=None, repr=False)
 
     @property
     def window_weeks(self) -> int:
@@ -628,6 +635,7 @@ def analyse_period(
         car = fit_car(observed, expected, graph, model=cfg.smoothing.model, covariates=covariates,
                       priors=_priors(cfg), threshold=cfg.smoothing.threshold)
         car_frame = car.to_frame().reindex(ids)
+        kriging, kriging_info = _kriging(cfg, observed, expected, boundaries)
 
         steps.start("clusters", f"Moran's I and local clusters ({cfg.clusters.permutations} permutations)")
         from ..autocorrelation import rate_local_clusters, rate_morans_i
@@ -657,6 +665,9 @@ def analyse_period(
         table["rr_low"] = car_frame["rr_low"].to_numpy(float)
         table["rr_high"] = car_frame["rr_high"].to_numpy(float)
         table["p_above_1"] = car_frame["p_above_1"].to_numpy(float)
+        if cfg.smoothing.kriging:
+            for col, values in _kriged_columns(kriging, len(ids)).items():
+                table[col] = values
         threshold_differs = not math.isclose(cfg.smoothing.threshold, 1.0)
         if threshold_differs:
             table["p_above_threshold"] = car_frame["p_above_threshold"].to_numpy(float)
@@ -704,6 +715,7 @@ def analyse_period(
                            "counts": {k_: int(v) for k_, v in table["cluster"].value_counts().items()}},
         "empirical_bayes": {"prior_mean": eb.prior_mean, "prior_shape": eb.prior_shape},
         "model": _model_summary(car, cfg),
+        **({"kriging": kriging_info} if cfg.smoothing.kriging else {}),
         "flags": {"rule": rules.describe(adjust=cl.adjust, alpha=cl.alpha), **counts,
                   "previous_period": changes.previous_period,
                   "previous_available": changes.previous_available},
@@ -719,8 +731,39 @@ def analyse_period(
         config=cfg, period=key, weeks=tuple(window), period_start=start_day, period_end=end_day, areas=areas,
         graph=graph, morans_i=moran, local_clusters=local_result, empirical_bayes=eb, car_fit=car,
         changes=changes, rules=rules, inputs=tuple(hashes), run_info=run_info, weekly=weekly,
-        settings=settings,
+        settings=settings, kriging=kriging,
     )
+
+
+
+def _kriging(cfg, observed, expected, boundaries):
+    """Poisson kriging of the window's counts with expected counts as the denominators (or None, info)."""
+    if not cfg.smoothing.kriging:
+        return None, {}
+    from ..errors import ModelError, ModelWarning
+    from ..geostatistics import poisson_kriging, risk_variogram
+
+    try:
+        variogram = risk_variogram(observed, expected, boundaries)
+        result = poisson_kriging(observed, expected, boundaries, variogram=variogram,
+                                 neighbours=cfg.smoothing.kriging_neighbours, per=1.0)
+    except ModelError as exc:
+        warnings.warn(f"Poisson kriging skipped: {exc}", ModelWarning, stacklevel=2)
+        return None, {"skipped": str(exc)}
+    m = result.model
+    return result, {
+        "variogram_model": m.model, "nugget": m.nugget, "partial_sill": m.partial_sill, "range": m.range,
+        "spatial_structure": bool(variogram.spatial_structure), "neighbours": result.neighbours,
+        "areas_with_negative_weights": int((result.negative_weight_count > 0).sum()),
+        "leave_one_out": dict(result.cv), "notes": [*variogram.notes, *result.notes],
+    }
+
+
+def _kriged_columns(result, n: int) -> dict:
+    """Kriged relative risks on the SIR scale (rate per expected case) and their approximate 95% interval."""
+    if result is None:
+        return {c: np.full(n, np.nan) for c in KRIGING_COLUMNS}
+    return {"kriged_rr": result.rate, "kriged_rr_low": result.rate_low, "kriged_rr_high": result.rate_high}
 
 
 

@@ -115,6 +115,9 @@ def bulletin_figures(analysis, words: Wording) -> tuple[list[dict], list[str]]:
                   sir_min=f"{np.nanmin(sir):.2f}", sir_max=f"{np.nanmax(sir):.2f}",
                   rr_min=f"{np.nanmin(rr):.2f}", rr_max=f"{np.nanmax(rr):.2f}")))
 
+        if getattr(analysis, "kriging", None) is not None:
+            out.extend(_kriging_figures(analysis, gdf, names, words, period_text, source))
+
         fig, ax = _map_figure(gdf)
         maps.exceedance_map(gdf, "p_above_1", threshold=1.0, ax=ax, period=period_text, source=source)
         hi, lo = (p > 0.8).to_numpy(), (p < 0.2).to_numpy()
@@ -162,6 +165,39 @@ def bulletin_figures(analysis, words: Wording) -> tuple[list[dict], list[str]]:
     if n_islands:
         notes.append(words("islands_note", n=n_islands))
     return out, notes
+
+
+def _kriging_figures(analysis, gdf, names, words: Wording, period_text: str, source) -> list[dict]:
+    """CAR and Poisson-kriged relative risks side by side, and the risk semivariogram."""
+    import matplotlib.pyplot as plt
+
+    from .. import maps
+    from .._classify import classify
+    from ..geostatistics import RiskVariogram, variogram_plot
+    from ..maps import _map_aspect
+
+    cfg = analysis.config
+    kriging = analysis.kriging
+    car = cfg.smoothing.model.upper()
+    h = float(np.clip(3.0 * _map_aspect(gdf) + 1.9, 3.4, 7.5))
+    fig = maps.raw_beside_smoothed(gdf, "rr", "kriged_rr", titles=(words("fig_kriging_left", model=car),
+                                                                   words("fig_kriging_right")),
+                                   period=period_text, source=source, figsize=(_MAP_WIDTH_IN + 0.2, h))
+    a = classify(gdf["rr"].to_numpy(float), scheme="relative_risk").class_index
+    b = classify(gdf["kriged_rr"].to_numpy(float), scheme="relative_risk").class_index
+    differ = a != b
+    gap = (np.log(gdf["rr"].clip(lower=1e-9)) - np.log(gdf["kriged_rr"].clip(lower=1e-9))).abs()
+    out = [figure_entry(fig, "kriging", words("fig_kriging_title"), words("fig_kriging_caption", model=car),
+                        words("fig_kriging_alt", model=car, n_differ=int(differ.sum()), n=len(gdf),
+                              where=_where(names, gap, differ, words)))]
+    if isinstance(kriging.variogram, RiskVariogram):
+        fig, ax = plt.subplots(figsize=(_MAP_WIDTH_IN, 4.5), layout="constrained")
+        variogram_plot(kriging.variogram, ax=ax)
+        curve = kriging.model.model
+        out.append(figure_entry(fig, "semivariogram", words("fig_variogram_title"),
+                                words("fig_variogram_caption", curve=curve),
+                                words("fig_variogram_alt", curve=curve)))
+    return out
 
 
 def locator_figure(analysis, flagged: pd.DataFrame, words: Wording) -> tuple[dict | None, bool]:

@@ -21,6 +21,7 @@ from .analysis import (
     _ADJUST_LABEL,
     _DISCLOSING_COLUMNS,
     AREA_COLUMNS,
+    KRIGING_COLUMNS,
     STANDARDIZED_RATE_COLUMNS,
     FlagRules,
     PeriodAnalysis,
@@ -118,6 +119,9 @@ def _write_tables(areas, folder: Path, *, public: bool, suppress_below: int, thr
     cols = [c for c in AREA_COLUMNS if c != "area_id"]
     if threshold_differs:
         cols.insert(cols.index("p_above_1") + 1, "p_above_threshold")
+    if all(c in areas.columns for c in KRIGING_COLUMNS):
+        at = cols.index("p_above_threshold" if threshold_differs else "p_above_1") + 1
+        cols[at:at] = list(KRIGING_COLUMNS)
     if STANDARDIZED_RATE_COLUMNS[0] in areas.columns:
         at = cols.index("rate_high") + 1
         cols[at:at] = list(STANDARDIZED_RATE_COLUMNS)
@@ -182,6 +186,17 @@ _REFERENCES = (
     "24(8):1185–1202.",
 )
 
+_KRIGING_REFERENCES = (
+    "Goovaerts P (2006). Geostatistical analysis of disease data: accounting for spatial support and population "
+    "density in the isopleth mapping of cancer mortality risk using area-to-point Poisson kriging. "
+    "International Journal of Health Geographics 5:52.",
+    "Kyriakidis PC (2004). A geostatistical framework for area-to-point spatial interpolation. Geographical "
+    "Analysis 36(3):259–289.",
+    "Monestiez P, Dubroca L, Bonnin E, Durbec JP, Guinet C (2006). Geostatistical modelling of spatial "
+    "distribution of Balaenoptera physalus in the Northwestern Mediterranean Sea from sparse count data and "
+    "heterogeneous observation efforts. Ecological Modelling 193:615–628.",
+)
+
 
 def _cautions(words, suppress_below: int) -> list[str]:
     hidden = (words("caution_hidden", last=suppress_below - 1) if suppress_below > 1
@@ -214,6 +229,8 @@ def _methods(words, cfg, rules: FlagRules, n_window: int, model: dict, has_std: 
         words("method_local", stat=words(f"method_stat_{cl.statistic}"), perm=cl.permutations,
               adjust=words(f"method_adjust_{cl.adjust}"), alpha=f"{cl.alpha:g}"),
         words("method_flags", rule=rules.describe(adjust=cl.adjust, alpha=cl.alpha)),
+        *([words("method_kriging", k=cfg.smoothing.kriging_neighbours)] if getattr(cfg.smoothing, "kriging", False)
+          else []),
         words("method_funnel"),
     ]
     parts = []
@@ -432,7 +449,7 @@ def _page_context(analysis: PeriodAnalysis, words, run_info: dict) -> dict:
                   {"href": "run.json", "text": words("file_json")}],
         "latest_href": "../latest.html" if per_period else None,
         "methods": _methods(words, cfg, rules, n_window, run_info["model"], "std_rate_per_100k" in table.columns),
-        "references": _REFERENCES,
+        "references": _REFERENCES + (_KRIGING_REFERENCES if getattr(cfg.smoothing, "kriging", False) else ()),
         "cautions": _cautions(words, sb),
         "provenance": {
             "version": run_info["version"], "run_time": run_info["run_time"].replace("+00:00", " UTC"),

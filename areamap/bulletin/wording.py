@@ -122,6 +122,31 @@ STRINGS: dict[str, str] = {
     "fig_raw_alt": ("Two maps side by side: raw standardized incidence ratios and smoothed relative risks. "
                     "{n_high} of {n} districts have a smoothed relative risk above 1.1 ({where}); raw ratios "
                     "range from {sir_min} to {sir_max}, smoothed risks from {rr_min} to {rr_max}."),
+    "fig_kriging_title": "Two smoothers side by side",
+    "fig_kriging_caption": ("Left: relative risk smoothed by the {model} model (neighbours from the graph). Right: "
+                            "relative risk from area-to-area Poisson kriging (weights from distance, district shape "
+                            "and population through the risk semivariogram), same classes and colours. Where the two "
+                            "maps disagree, the smoothed picture depends on the choice of method and neighbours; read "
+                            "such districts with extra care. Flags use the {model} estimates only."),
+    "fig_kriging_alt": ("Two maps side by side: {model} relative risks and Poisson-kriged relative risks. "
+                        "{n_differ} of {n} districts fall in different risk classes on the two maps ({where})."),
+    "fig_kriging_left": "{model} relative risk",
+    "fig_kriging_right": "Poisson-kriged relative risk",
+    "fig_variogram_title": "Risk semivariogram",
+    "fig_variogram_caption": ("How different the risks of two districts are, by the distance between them, after "
+                              "removing the variation that Poisson chance alone would give (dots sized by number of "
+                              "pairs), with the fitted {curve} model used for kriging. A curve that rises and levels "
+                              "off means nearby districts share risk; a flat curve means kriging has little to "
+                              "borrow."),
+    "fig_variogram_alt": ("Scatter of semivariance against distance between districts with the fitted {curve} "
+                          "curve."),
+    "method_kriging": ("Kriged relative risks (kriged_rr) come from area-to-area Poisson kriging (Kyriakidis 2004; "
+                       "Goovaerts 2006): a population-weighted semivariogram of the ratios, corrected for Poisson "
+                       "noise (Monestiez et al. 2006), is fitted by least squares; each district's estimate is a "
+                       "weighted mean of its own ratio and those of its {k} nearest districts, with covariances "
+                       "averaged over points inside the districts and the Poisson variance of each ratio added to "
+                       "its own term. Intervals are approximate (normal, from the kriging variance). They are shown "
+                       "beside, not instead of, the model-based estimates."),
     "fig_prob_title": "Uncertainty: probability of raised risk",
     "fig_prob_caption": ("Posterior probability that a district's relative risk exceeds 1. Above 0.8: good "
                          "evidence of raised risk; below 0.2: good evidence of lowered risk; in between: the data "
