@@ -18,7 +18,16 @@ from matplotlib.colors import to_rgba
 
 from ._classify import _DIVERGING_LAB, _lab_to_rgb
 from .errors import InputError, ParameterError, format_examples
-from .maps import _SMALL_PT, _area_mask, _area_paths, _check_gdf, _draw, _frame_map, _new_ax, _plain
+from .maps import (
+    _SMALL_PT,
+    _area_mask,
+    _area_paths,
+    _check_gdf,
+    _draw,
+    _frame_map,
+    _new_ax,
+    _plain,
+)
 
 __all__ = ["locator_keys", "locator_map", "weekly_curve"]
 
