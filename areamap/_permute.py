@@ -16,63 +16,84 @@ __all__: list[str] = []
 
 #: neighbour counts up to which repeated indices are found by comparing all pairs
 _PAIRWISE_MAX = 24
+#: areas per parallel work item of :func:`block_counts`
+CHUNK = 2048
 
 
 @nb.njit(parallel=True, cache=True)
-def block_counts(draws, t_group, t_local, t_pos, g_c, g_off, g_m, v, centre, threshold,
+def block_counts(draws, chunks, g_c, g_off, g_m, g_start, t_pos, v, centre, threshold,
                  count, dup):  # pragma: no cover - compiled
     """Extreme-sum counts for one block of permutations.
 
-    ``draws`` (P, n_slots): raw indices into the n - 1 other areas; tested area t of
-    group g (``t_group[t]``, position ``t_local[t]`` in the group, original index
-    ``t_pos[t]``) owns the slots ``g_off[g] + a * g_m[g] + t_local[t]``, a < g_c[g].
-    For every permutation r: if the g_c[g] indices are not all distinct, set
-    ``dup[r, t]`` (the caller redraws them); otherwise add 1 to ``count[t_pos[t]]`` when
-    |sum of v over the shifted indices - centre| >= threshold. The sum runs over the
-    slots in order a = 0, 1, ... (the same floating-point order as the numpy path).
-    Groups with g_c = 0 are skipped (handled by the caller).
+    ``draws`` (P, n_slots): raw indices into the n - 1 other areas. Group g has g_m[g] tested
+    areas (original indices ``t_pos[g_start[g]:g_start[g] + g_m[g]]``) with g_c[g] neighbours each;
+    slot a of its area j is ``g_off[g] + a * g_m[g] + j``. ``chunks`` (K, 3) lists (g, j0, j1)
+    ranges of areas, processed in parallel. For every permutation r and area: if its g_c indices
+    are not all distinct, set ``dup[r, g_start[g] + j]`` (the caller redraws them); otherwise
+    add 1 to ``count[t_pos[...]]`` when |sum of v over the shifted indices - centre| >= threshold.
+    The sum runs over the slots in order a = 0, 1, ... (the floating-point order of the numpy
+    path). Slots are read in runs of consecutive areas (cache-friendly). Groups with g_c = 0
+    are skipped (handled by the caller).
     """
     n_perm = draws.shape[0]
-    n_tested = t_pos.size
-    for t in nb.prange(n_tested):
-        g = t_group[t]
+    for k in nb.prange(chunks.shape[0]):
+        g = chunks[k, 0]
+        j0 = chunks[k, 1]
+        j1 = chunks[k, 2]
         c = g_c[g]
         if c == 0:
             continue
-        i = t_pos[t]
-        base = g_off[g] + t_local[t]
         m = g_m[g]
-        ce = centre[i]
-        th = threshold[i]
-        hits = 0
-        buf = np.empty(c if c > _PAIRWISE_MAX else 0, draws.dtype)
+        off = g_off[g]
+        t0 = g_start[g]
+        w = j1 - j0
+        s = np.empty(w)
+        bad = np.empty(w, np.uint8)
+        hits = np.zeros(w, np.int64)
+        buf = np.empty(c, draws.dtype)
+        focal = t_pos[t0 + j0 : t0 + j1].astype(draws.dtype)
         for r in range(n_perm):
-            repeated = False
-            if c > _PAIRWISE_MAX:  # many neighbours: sort a copy instead of comparing all pairs
-                for a in range(c):
-                    buf[a] = draws[r, base + a * m]
-                buf.sort()
-                for a in range(1, c):
-                    if buf[a] == buf[a - 1]:
-                        repeated = True
-                        break
-            else:
-                for a in range(1, c):
-                    da = draws[r, base + a * m]
-                    for b in range(a):
-                        if draws[r, base + b * m] == da:
-                            repeated = True
-                            break
-                    if repeated:
-                        break
-            if repeated:
-                dup[r, t] = True
-                continue
-            d = draws[r, base]
-            s = v[d + (d >= i)]
+            row = draws[r]
+            first = row[off + j0 : off + j1]
+            for j in range(w):
+                d = first[j]
+                s[j] = v[d + (d >= focal[j])]
+                bad[j] = 0
             for a in range(1, c):
-                d = draws[r, base + a * m]
-                s += v[d + (d >= i)]
-            if abs(s - ce) >= th:
-                hits += 1
-        count[i] += hits
+                cur = row[off + a * m + j0 : off + a * m + j1]
+                for j in range(w):
+                    d = cur[j]
+                    s[j] += v[d + (d >= focal[j])]
+            if c <= _PAIRWISE_MAX:
+                for a in range(1, c):
+                    cur = row[off + a * m + j0 : off + a * m + j1]
+                    for b in range(a):
+                        other = row[off + b * m + j0 : off + b * m + j1]
+                        for j in range(w):
+                            bad[j] |= cur[j] == other[j]
+            else:  # many neighbours: sort a copy instead of comparing all pairs
+                for j in range(w):
+                    for a in range(c):
+                        buf[a] = row[off + a * m + j0 + j]
+                    buf.sort()
+                    for a in range(1, c):
+                        if buf[a] == buf[a - 1]:
+                            bad[j] = 1
+                            break
+            for j in range(w):
+                i = focal[j]
+                if bad[j]:
+                    dup[r, t0 + j0 + j] = True
+                elif abs(s[j] - centre[i]) >= threshold[i]:
+                    hits[j] += 1
+        for j in range(w):
+            count[t_pos[t0 + j0 + j]] += hits[j]
+
+
+def chunk_table(g_m, width):
+    """(g, j0, j1) ranges of at most ``width`` consecutive areas of each group."""
+    rows = []
+    for g, m in enumerate(g_m):
+        for j0 in range(0, int(m), width):
+            rows.append((g, j0, min(int(m), j0 + width)))
+    return np.array(rows, dtype=np.int64).reshape(-1, 3)

@@ -34,7 +34,7 @@ import pandas as pd
 import scipy.sparse as sp
 from scipy import stats
 
-from ._permute import block_counts
+from ._permute import CHUNK, block_counts, chunk_table
 from ._params import check_choice, check_interval, check_positive_int
 from .errors import GraphError, InputError, ParameterError, format_examples
 from .graphs import AreaGraph
@@ -959,8 +959,7 @@ def _neighbour_sum_pvalues(
     g_off = np.array([off for _, _, off in groups], dtype=np.int64)
     g_m = np.array([pos.size for _, pos, _ in groups], dtype=np.int64)
     g_start = np.concatenate([[0], np.cumsum(g_m)]).astype(np.int64)
-    t_group = np.repeat(np.arange(len(groups)), g_m).astype(np.int64)
-    t_local = (np.arange(order.size) - g_start[t_group]).astype(np.int64)
+    chunks = chunk_table(g_m, CHUNK)
     t_pos = order.astype(np.int64)
     workers = max(1, min(len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else
                          (os.cpu_count() or 1), block_size))
@@ -978,7 +977,7 @@ def _neighbour_sum_pvalues(
 
             list(pool.map(fill, range(P)))
             dup = np.zeros((P, order.size), dtype=bool)
-            block_counts(draws, t_group, t_local, t_pos, g_c, g_off, g_m, v, centre, threshold,
+            block_counts(draws, chunks, g_c, g_off, g_m, g_start, t_pos, v, centre, threshold,
                          count, dup)
             for gi, (c, pos, off) in enumerate(groups):
                 if floyd[gi]:
