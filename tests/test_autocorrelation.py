@@ -422,7 +422,7 @@ def test_permutation_kernel_matches_direct_computation(c):
     """The compiled block kernel against a direct numpy computation on the same draws: indices
     shifted past the focal area, rows with a repeated index flagged (not counted), extreme neighbour
     sums counted (exact integer agreement). c = 30 takes the sorting branch for repeated indices."""
-    from areamap._permute import block_counts
+    from areamap._permute import block_counts, chunk_table
 
     rng = np.random.default_rng(c)
     n, m, P = (40 if c < 10 else 2000), 6, 50  # repeated indices in some rows, not all
@@ -433,9 +433,9 @@ def test_permutation_kernel_matches_direct_computation(c):
     draws = rng.integers(0, n - 1, size=(P, c * m)).astype(np.int32)
     count = np.zeros(n, dtype=np.int64)
     dup = np.zeros((P, m), dtype=bool)
-    z = np.zeros(m, dtype=np.int64)
-    block_counts(draws, z, np.arange(m, dtype=np.int64), pos.astype(np.int64), np.array([c]),
-                 np.array([0]), np.array([m]), v, centre, threshold, count, dup)
+    g_m = np.array([m])
+    block_counts(draws, chunk_table(g_m, 4), np.array([c]), np.array([0]), g_m, np.array([0]),
+                 pos.astype(np.int64), v, centre, threshold, count, dup)  # chunks of 4 and 2 areas
     view = draws.reshape(P, c, m).astype(np.int64)
     shifted = view + (view >= pos[None, None, :])
     want_dup = np.array([[len(set(view[r, :, j])) < c for j in range(m)] for r in range(P)])
