@@ -5,21 +5,16 @@ from __future__ import annotations
 import hashlib
 import json
 import shutil
+import warnings
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 import pytest
+from numpy.testing import assert_allclose
 
-from areamap.bulletin import (
-    AREA_COLUMNS,
-    FlagRules,
-    _check_out_dir,
-    _publish,
-    file_sha256,
-    flag_areas,
-    suppress_counts,
-)
+from areamap.bulletin import AREA_COLUMNS, FlagRules, file_sha256, flag_areas, suppress_counts
+from areamap.bulletin.publish import _check_out_dir, _publish
 from areamap.errors import InputError, ParameterError
 
 
@@ -410,7 +405,7 @@ def test_bad_input_exits_2_and_changes_nothing(demo_copy, breakage, capsys):
 
 @pytest.mark.slow
 def test_internal_failure_exits_1_and_keeps_previous_bulletin(demo_copy, monkeypatch, capsys):
-    import areamap.bulletin as bulletin
+    import areamap.bulletin.render as bulletin
     from areamap.cli import main
 
     def broken(*args, **kwargs):
@@ -483,7 +478,7 @@ def test_bad_period_text(demo_copy, capsys):
 def test_warnings_are_recorded_and_passed_on():
     import warnings
 
-    from areamap.bulletin import _recording_warnings
+    from areamap.bulletin.analysis import _recording_warnings
     from areamap.errors import DataWarning
 
     store: list[str] = []
@@ -533,3 +528,65 @@ def _write_config(folder: Path, name: str, text: str) -> Path:
     path = folder / name
     path.write_text(text, encoding="utf-8")
     return path
+
+
+@pytest.mark.slow
+def test_analyse_period_writes_nothing_and_reproduces_the_bulletin(demo_run):
+    """analyse_period computes what run_bulletin publishes, and changes no file (separation of computing
+    from publishing)."""
+    from areamap.bulletin import analyse_period
+
+    folder = demo_run["folder"]
+    before = {p: _sha(p) for p in folder.rglob("*") if p.is_file()}
+    analysis = analyse_period(demo_run["config"], period="2026-W47")
+    assert {p: _sha(p) for p in folder.rglob("*") if p.is_file()} == before
+    published = pd.read_csv(demo_run["out"] / "areas.csv", dtype={"area_id": str}).set_index("area_id")
+    mine = analysis.to_frame()
+    # the archive now holds W47 itself; the comparison is with W46, so flags and changes agree
+    for column in ("observed", "expected", "sir", "eb_rr", "rr", "rr_low", "rr_high", "p_above_1", "cluster_p"):
+        np.testing.assert_allclose(mine[column].to_numpy(float), published[column].to_numpy(float),
+                                   rtol=1e-9)  # CSV holds 10 significant digits
+    assert mine["cluster"].tolist() == published["cluster"].tolist()
+    assert mine["flag"].tolist() == published["flag"].astype(str).str.lower().eq("true").tolist()
+    assert "Analysis of 2026-W47" in analysis.summary()
+
+
+@pytest.mark.slow
+def test_kriged_risks_beside_car_estimates(tmp_path):
+    """[smoothing] kriging = true adds kriged columns, a two-map figure and the semivariogram; flags unchanged."""
+    from areamap.bulletin import KRIGING_COLUMNS, analyse_period, run_bulletin
+    from areamap.demo import write_demo
+
+    config = write_demo(tmp_path / "demo")
+    text = config.read_text(encoding="utf-8")
+    config.write_text(text.replace('threshold = 1.0\n', 'threshold = 1.0\nkriging = true\nkriging_neighbours = 16\n',
+                                   1).replace("permutations = 9999", "permutations = 199"), encoding="utf-8")
+    out = tmp_path / "bulletin"
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        run_bulletin(config, out=out)
+        analysis = analyse_period(config)
+    table = pd.read_csv(out / "areas.csv", dtype={"area_id": str})
+    cols = list(AREA_COLUMNS)
+    at = cols.index("p_above_1") + 1
+    assert list(table.columns) == cols[:at] + list(KRIGING_COLUMNS) + cols[at:]
+    run = json.loads((out / "run.json").read_text(encoding="utf-8"))
+    page = (out / "index.html").read_text(encoding="utf-8")
+    if analysis.kriging is None:  # the demo's counts showed no structure: said so, columns blank
+        assert "skipped" in run["kriging"] and table["kriged_rr"].isna().all()
+        return
+    # the columns are the kriging result on the SIR scale (rate per expected case)
+    assert_allclose(table["kriged_rr"], analysis.kriging.rate, rtol=1e-9)  # written with 10 significant digits
+    assert (table["kriged_rr_low"] <= table["kriged_rr"]).all() and (table["kriged_rr"] <= table["kriged_rr_high"]).all()
+    assert run["kriging"]["neighbours"] == 17  # 16 nearest plus the district itself
+    assert 'id="fig-kriging"' in page or "Two smoothers side by side" in page
+    assert "Poisson kriging" in page and "Kyriakidis" in page
+    # flags come from the CAR model only: identical to an analysis without kriging
+    plain = config.parent / "plain.toml"
+    plain.write_text(config.read_text(encoding="utf-8").replace("kriging = true", "kriging = false"),
+                     encoding="utf-8")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        without = analyse_period(plain)
+    assert table["flag"].tolist() == without.areas["flag"].tolist()
+    assert "kriged_rr" not in without.areas.columns and without.kriging is None
