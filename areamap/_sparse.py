@@ -402,7 +402,6 @@ class _DiagonalPrefix:
 
     def __init__(self, n: int, k: int, ap: np.ndarray, ai: np.ndarray):
         self.n, self.k = n, k
-        nu = ai.size
         cols = np.repeat(np.arange(n, dtype=np.int64), np.diff(ap))
         rows = ai
         self.diag_pos = ap[1 : k + 1] - 1  # column j < k holds its diagonal only

@@ -34,8 +34,8 @@ import pandas as pd
 import scipy.sparse as sp
 from scipy import stats
 
-from ._permute import CHUNK, block_counts, chunk_table
 from ._params import check_choice, check_interval, check_positive_int
+from ._permute import CHUNK, block_counts, chunk_table
 from .errors import GraphError, InputError, ParameterError, format_examples
 from .graphs import AreaGraph
 

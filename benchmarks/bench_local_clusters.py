@@ -24,17 +24,16 @@ from __future__ import annotations
 import hashlib
 import json
 import os
-import shutil
-import tempfile
-from pathlib import Path
 import platform
 import resource
+import shutil
 import subprocess
 import sys
 import time
 
 import numpy as np
 import scipy.sparse as sp
+from _revision import export_revision
 
 from areamap.autocorrelation import local_clusters
 from areamap.graphs import AreaGraph
@@ -133,18 +132,8 @@ def _run_child(kind: str, size: int, permutations: int, pythonpath: str | None =
     return json.loads(out.stdout.strip().splitlines()[-1])
 
 
-def _export(ref: str) -> str:
-    """Export the areamap package of git revision ``ref`` into a temporary folder; returns it."""
-    repo = Path(__file__).resolve().parent.parent
-    dest = tempfile.mkdtemp(prefix="areamap-old-")
-    archive = subprocess.run(["git", "-C", str(repo), "archive", ref, "areamap"], check=True,
-                             capture_output=True).stdout
-    subprocess.run(["tar", "-x", "-C", dest], input=archive, check=True)
-    return dest
-
-
 def main(quick: bool, old: str = "main") -> int:
-    old_path = _export(old) if old else None
+    old_path = export_revision(old) if old else None
     try:
         return _main(quick, old, old_path)
     finally:

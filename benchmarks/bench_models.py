@@ -18,14 +18,14 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
+import shutil
 import subprocess
 import sys
 import time
-
-import os
-import shutil
-import tempfile
 from pathlib import Path
+
+from _revision import export_revision
 
 TARGETS = {10_000: 3.0, 100_000: 45.0}
 MEMORY_LIMIT_MB = 2048.0
@@ -105,16 +105,6 @@ def _child(n: int, profile: bool = False) -> None:
         "sigma": float(fit.hyperparameters.loc["sigma", "mean"]),
         "phi": float(fit.hyperparameters.loc["phi", "mean"]),
     }))
-
-
-def _export(ref: str) -> str:
-    """Export the areamap package of git revision ``ref`` into a temporary folder; returns it."""
-    repo = Path(__file__).resolve().parent.parent
-    dest = tempfile.mkdtemp(prefix="areamap-old-")
-    archive = subprocess.run(["git", "-C", str(repo), "archive", ref, "areamap"], check=True,
-                             capture_output=True).stdout
-    subprocess.run(["tar", "-x", "-C", dest], input=archive, check=True)
-    return dest
 
 
 def _run(args: list[str], pythonpath: str | None = None) -> subprocess.CompletedProcess:
@@ -202,7 +192,7 @@ def main(argv=None) -> int:
     if args.child:
         _child(args.child, args.profile)
         return 0
-    old_path = _export(args.old) if args.old else None
+    old_path = export_revision(args.old) if args.old else None
     try:
         engines = [("new", None)] + ([(f"old ({args.old})", old_path)] if old_path else [])
         for _, path in engines:
