@@ -29,6 +29,7 @@ from .bulletin import (
     run_bulletin,
     suppress_counts,
 )
+from .bulletin.wording import load_wording
 from .config import RunConfig, load_config
 from .demo import write_demo
 from .errors import (
@@ -77,9 +78,12 @@ from .intake import (
     week_range,
     weeks_ending,
 )
+from .explore import explorable_map
+from .figures import locator_map, weekly_curve
 from .maps import (
     CAUTION_TEXT,
     CLUSTER_COLOURS,
+    CLUSTER_STYLE,
     Classification,
     add_map_furniture,
     bivariate_map,
@@ -110,6 +114,7 @@ from .rates import (
     rolling_window_sum,
     standardized_ratio,
 )
+from .scan import SCAN_DIRECTIONS, ScanResult, prospective_scan, scan_map, spatial_scan
 from .smoothing import (
     PoissonGammaResult,
     SmoothedRates,
@@ -148,6 +153,9 @@ __all__ = [
     "CAUTION_TEXT", "CLUSTER_COLOURS", "Classification", "classify", "natural_breaks", "relative_risk_breaks",
     "choropleth", "raw_beside_smoothed", "bivariate_map", "exceedance_map", "cluster_map", "funnel_limits",
     "funnel_plot", "moran_scatterplot", "shrinkage_plot", "ranked_interval_plot", "add_map_furniture",
+    "CLUSTER_STYLE", "locator_map", "weekly_curve", "explorable_map",
+    # scan statistic
+    "SCAN_DIRECTIONS", "ScanResult", "spatial_scan", "prospective_scan", "scan_map",
     # CAR models
     "CarPriors", "CarFit", "fit_car",
     "SpaceTimePriors", "SpaceTimeFit", "fit_spacetime", "plot_regional_trend", "plot_district_trends",
@@ -157,6 +165,6 @@ __all__ = [
     "SmootherValidation", "cross_validate_smoothers",
     # bulletin and history
     "analyse_period", "PeriodAnalysis", "render_bulletin", "run_bulletin", "BulletinResult", "FlagRules",
-    "flag_areas", "suppress_counts", "file_sha256",
+    "flag_areas", "suppress_counts", "file_sha256", "load_wording",
     "HistoryArchive", "FlagChanges",
 ]

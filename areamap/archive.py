@@ -32,6 +32,7 @@ recompute the periods written after it; re-run those too when that matters.
 from __future__ import annotations
 
 import datetime as _dt
+import json
 import sqlite3
 from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
@@ -101,6 +102,16 @@ CREATE TABLE IF NOT EXISTS area_results (
     PRIMARY KEY (period, area_id)
 );
 CREATE INDEX IF NOT EXISTS area_results_area ON area_results(area_id, period);
+"""
+
+# Added without a schema bump: created on demand, absent from archives written before it (their periods
+# then carry only window_weeks, which the periods table always had).
+_SETTINGS_SCHEMA = """
+CREATE TABLE IF NOT EXISTS period_settings (
+    period TEXT PRIMARY KEY,
+    series TEXT NOT NULL,
+    settings TEXT NOT NULL
+)
 """
 
 
@@ -312,6 +323,8 @@ class HistoryArchive:
         window_weeks: int = 1,
         tool_version: str | None = None,
         before_commit: Callable[[], None] | None = None,
+        settings: dict | None = None,
+        series: str = "",
     ) -> None:
         """Store (or replace) one period's per-area results in a single transaction.
 
@@ -330,6 +343,11 @@ class HistoryArchive:
             Length of the analysed window in weeks.
         tool_version : str, optional
             Version of areamap that produced the results (provenance).
+        settings : dict, optional
+            The settings the period was analysed with (window, model, flag
+            rule; JSON-serialisable), checked by :meth:`check_settings`.
+        series : str, default=""
+            Name of the series the period belongs to (recorded with the settings).
         before_commit : callable, optional
             Called with no arguments while the write lock is held, just before
             COMMIT (the bulletin moves its output folder into place here, so
@@ -380,6 +398,11 @@ class HistoryArchive:
                     (key, str(start), str(end), window_weeks, written_at, tool_version, len(ids), flagged),
                 )
                 con.executemany(insert, rows)
+                con.execute(_SETTINGS_SCHEMA)
+                con.execute("DELETE FROM period_settings WHERE period = ?", (key,))
+                if settings is not None:
+                    con.execute("INSERT INTO period_settings VALUES (?, ?, ?)",
+                                (key, str(series), json.dumps(settings, sort_keys=True)))
                 if before_commit is not None:
                     before_commit()
                 con.execute("COMMIT")
@@ -393,6 +416,59 @@ class HistoryArchive:
             raise self._corrupt(exc) from None
         finally:
             con.close()
+
+    # ---------------------------------------------------------------- settings
+    def settings(self, period: str) -> dict | None:
+        """The settings recorded for ``period`` (window_weeks always; the rest when recorded), or None."""
+        key = _week_key(period)
+        with self._reading() as con:
+            if con is None or not _has_tables(con):
+                return None
+            row = con.execute("SELECT window_weeks FROM periods WHERE period = ?", (key,)).fetchone()
+            if row is None:
+                return None
+            out = {"window_weeks": int(row[0])}
+            has = con.execute("SELECT 1 FROM sqlite_master WHERE type = 'table' AND name = 'period_settings'")
+            if has.fetchone():
+                rec = con.execute("SELECT settings FROM period_settings WHERE period = ?", (key,)).fetchone()
+                if rec is not None:
+                    out.update(json.loads(rec[0]))
+        return out
+
+    def check_settings(self, period: str, settings: dict, *, series: str = "") -> None:
+        """Stop when the archive's previous period was analysed with other settings.
+
+        Compares ``settings`` with those recorded for the latest archived
+        period before ``period`` (keys missing from either side are not
+        compared, so archives written before settings were recorded are
+        checked on the window only).
+
+        Raises
+        ------
+        ArchiveError
+            Naming each differing setting (archive vs this run) and the ways on:
+            a new named series (``[output] series``), the archive's settings, or
+            another archive file.
+        """
+        key = _week_key(period)
+        earlier = [p for p in self.periods() if p < key]
+        if not earlier:
+            return
+        prev = earlier[-1]
+        old = self.settings(prev) or {}
+        diffs = _setting_diffs(old, settings)
+        if not diffs:
+            return
+        name = f"w{settings.get('window_weeks', 'x')}-{(settings.get('model') or {}).get('model', 'model')}"
+        here = f" (series '{series}')" if series else ""
+        raise ArchiveError(
+            f"The history archive {self.path}{here} holds {prev}, analysed with other settings: "
+            + "; ".join(f"{k}: {a} in the archive, {b} in this run" for k, a, b in diffs)
+            + ". Comparing flags across different settings ('new', 'resolved', weeks in a row) would compare "
+            f"unlike things. To go on, either start a new series: set [output] series = \"{name}\" (it keeps its "
+            "own history file beside the archive); or run with the archive's settings; or point [output] "
+            "archive to a new file."
+        )
 
     # ------------------------------------------------------------------- read
     def periods(self) -> list[str]:
@@ -544,6 +620,18 @@ def _upgrade(con: sqlite3.Connection) -> None:
             con.execute(f"ALTER TABLE area_results ADD COLUMN {name} {kind}")
     if version < SCHEMA_VERSION:
         con.execute("UPDATE schema_version SET version = ?", (SCHEMA_VERSION,))
+
+
+def _setting_diffs(old: dict, new: dict, prefix: str = "") -> list[tuple[str, object, object]]:
+    """(dotted key, archive value, run value) for every setting present in both and different."""
+    out = []
+    for k in sorted(set(old) & set(new)):
+        a, b = old[k], new[k]
+        if isinstance(a, dict) and isinstance(b, dict):
+            out.extend(_setting_diffs(a, b, f"{prefix}{k}."))
+        elif (list(a) if isinstance(a, tuple) else a) != (list(b) if isinstance(b, tuple) else b):
+            out.append((f"{prefix}{k}", a, b))
+    return out
 
 
 def _has_tables(con: sqlite3.Connection) -> bool:

@@ -97,7 +97,7 @@ def _cmd_history(args: argparse.Namespace) -> int:
     from .errors import ArchiveError
 
     config = load_config(args.config)
-    archive = HistoryArchive(config.output.archive)
+    archive = HistoryArchive(config.output.archive_path)
     if not archive.path.exists():
         raise ArchiveError(
             f"No history archive at {archive.path} yet. Run 'areamap bulletin {args.config}' first."
@@ -105,6 +105,8 @@ def _cmd_history(args: argparse.Namespace) -> int:
     table = archive.history(area=args.area, last=args.last)
     weekly = None
     if not table.empty:
+        windows = {p: (archive.settings(p) or {}).get("window_weeks") for p in table["period"].unique()}
+        table.insert(1, "window_weeks", table["period"].map(windows))
         from .errors import AreamapError
         from .intake import load_study
 
@@ -122,8 +124,8 @@ def _history_text(table, *, area, last: int, weekly=None) -> str:
     head = f"History ({who}, last {last} archived period(s)):"
     if table.empty:
         return head + "\n(no flagged districts in these periods)"
-    cols = ["period", "area_id", "area_name", "observed", "expected", "rr", "p_above_1", "week_observed",
-            "forecast_mean", "forecast_high", "cluster", "flag", "flag_change", "weeks_flagged"]
+    cols = ["period", "window_weeks", "area_id", "area_name", "observed", "expected", "rr", "p_above_1",
+            "week_observed", "forecast_mean", "forecast_high", "cluster", "flag", "flag_change", "weeks_flagged"]
     shown = table[[c for c in cols if c in table.columns]].copy()
     for c, digits in (("expected", 1), ("rr", 2), ("p_above_1", 2), ("forecast_mean", 1), ("forecast_high", 0),
                       ("week_observed", 0)):
@@ -229,7 +231,9 @@ def _build_parser() -> argparse.ArgumentParser:
     p.add_argument("config", help="path to the run configuration (TOML), e.g. run.toml")
     p.add_argument("--period", default=None,
                    help="ISO week ending the analysed window, e.g. 2026-W47, or 'latest' (default: [period] week)")
-    p.add_argument("--out", default=None, help="output folder (default: 'bulletin' beside the configuration)")
+    p.add_argument("--out", default=None,
+                   help="output folder (default: 'bulletin' beside the configuration); each period goes into its own "
+                        "subfolder (OUT/2026-W47/) and OUT/latest.html points to the newest")
     p.add_argument("--public", action="store_true",
                    help="also suppress small counts in areas.csv and areas.gpkg (the HTML always does)")
     p.add_argument("--quiet", action="store_true", help="print nothing on success (for scheduled runs)")

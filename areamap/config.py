@@ -35,6 +35,7 @@ __all__ = [
     "PriorsConfig",
     "SmoothingConfig",
     "FlagsConfig",
+    "ScanConfig",
     "OutputConfig",
     "load_config",
     "config_from_dict",
@@ -287,6 +288,39 @@ class FlagsConfig:
     )
     use_clusters: bool = _key(True, "bool", "Also require (or report) membership of a significant High-High cluster.")
     min_observed: int = _key(0, "int", "Do not flag areas with fewer observed cases than this in the window.", low=0)
+    use_scan: bool = _key(True, "bool", "Also flag areas inside a scan zone with p-value below scan.alpha.")
+
+
+@dataclass(frozen=True)
+class ScanConfig:
+    """``[scan]``: the Poisson scan statistic (most likely zone and secondary zones)."""
+
+    enabled: bool = _key(True, "bool", "Run the scan statistic and add its section to the bulletin.")
+    kind: str = _key(
+        "spatial", "choice", "'spatial': zones over the window's counts; 'prospective': cylinders of the last "
+        "1..max_weeks weeks ending at the bulletin week (clusters still going on).",
+        choices=("spatial", "prospective"),
+    )
+    zones: str = _key(
+        "circle", "choice", "Candidate zones: 'circle' (districts whose centroids lie in a circle around each "
+        "district) or 'graph' (connected groups grown through the neighbour graph).", choices=("circle", "graph"),
+    )
+    max_share: float = _key(0.1, "float", "Largest share of the population a zone may hold.", low=0.0, high=0.5,
+                            closed="right")
+    direction: str = _key("high", "choice", "Scan for raised ('high'), lowered ('low') or either ('both') risk.",
+                          choices=("high", "low", "both"))
+    replicates: int = _key(999, "int", "Monte Carlo replicates; the smallest Monte Carlo p-value is "
+                           "1/(replicates + 1).", low=9)
+    alpha: float = _key(0.05, "float", "Zones with a Monte Carlo p-value below this are reported as significant.",
+                        low=0.0, high=1.0, closed="neither")
+    max_zones: int = _key(10, "int", "Most zones computed (the most likely zone and non-overlapping secondary "
+                          "zones).", low=1)
+    max_weeks: int = _key(4, "int", "Prospective scan: cylinders cover the last 1..max_weeks weeks.", low=1)
+    baseline: str = _key(
+        "history", "choice", "Prospective scan: expected shares from each district's earlier weeks ('history') "
+        "or from the expected counts ('expected').", choices=("history", "expected"),
+    )
+    baseline_weeks: int = _key(26, "int", "Prospective scan: earlier weeks read before the scanned weeks.", low=1)
 
 
 @dataclass(frozen=True)
@@ -301,6 +335,34 @@ class OutputConfig:
         "history.sqlite", "path", "History archive of weekly results (SQLite), relative to the configuration file.",
         must_exist=False,
     )
+    series: str = _key(
+        "", "name",
+        "Name of a series of periods analysed with the same settings; a named series keeps its own history "
+        "file beside the archive (history.NAME.sqlite). Start one when the window, model or flag rule changes.",
+    )
+    per_period: bool = _key(
+        True, "bool",
+        "Write each period into its own folder (bulletin/2026-W47/) and keep bulletin/latest.html pointing to "
+        "the newest; false writes straight into the output folder.",
+    )
+    audience: str = _key(
+        "specialist", "choice",
+        "'specialist': statistical notation (P(RR>1), CrI, FDR q); 'public': plain words, exact figures kept "
+        "in the tables.",
+        choices=("specialist", "public"),
+    )
+    date_format: str = _key(
+        "%Y-%m-%d", "date_format", "strftime format of the dates shown in the bulletin (ISO 8601 by default).",
+    )
+    strings_file: Path | None = _key(
+        None, "opt_path", "TOML file replacing texts of the bulletin's string catalogue (e.g. a translation).",
+    )
+
+    @property
+    def archive_path(self) -> Path:
+        """The history file of the configured series (``archive`` itself when no series is named)."""
+        a = Path(self.archive)
+        return a if not self.series else a.with_name(f"{a.stem}.{self.series}{a.suffix}")
 
 
 _SECTIONS: dict[str, type] = {
@@ -314,6 +376,7 @@ _SECTIONS: dict[str, type] = {
     "smoothing": SmoothingConfig,
     "spacetime": SpaceTimeConfig,
     "flags": FlagsConfig,
+    "scan": ScanConfig,
     "output": OutputConfig,
 }
 
@@ -334,7 +397,8 @@ class RunConfig:
         Bulletin title, region name and a one-line description of the data source.
     seed : int
         Seed of every permutation test and simulation of the run.
-    boundaries, cases, population, standardization, graph, period, clusters, smoothing, spacetime, flags, output
+    boundaries, cases, population, standardization, graph, period, clusters, smoothing, spacetime, flags, scan,
+    output
         One frozen dataclass per section.
 
     Examples
@@ -360,6 +424,7 @@ class RunConfig:
     smoothing: SmoothingConfig = field(default_factory=SmoothingConfig, metadata={"kind": "section"})
     spacetime: SpaceTimeConfig = field(default_factory=SpaceTimeConfig, metadata={"kind": "section"})
     flags: FlagsConfig = field(default_factory=FlagsConfig, metadata={"kind": "section"})
+    scan: ScanConfig = field(default_factory=ScanConfig, metadata={"kind": "section"})
     output: OutputConfig = field(default_factory=OutputConfig, metadata={"kind": "section"})
 
     @property
@@ -386,6 +451,8 @@ class RunConfig:
 _KIND_TEXT = {
     "week": "'latest' or an ISO week like '2026-W47'",
     "encoding": "a text encoding name such as 'utf-8' or 'latin-1'",
+    "name": "empty or a short name of letters, digits, '-' and '_' (at most 40, starting with a letter or digit)",
+    "date_format": "a strftime format with at least one % directive, such as '%Y-%m-%d' or '%d %B %Y'",
 }
 
 
@@ -472,6 +539,22 @@ def _convert(name: str, value: object, meta: Mapping, section: str, source: str,
             raise ConfigError(
                 f"{label} must be one of {opts}. Got {value!r} ({_type_name(value)}) instead.{hint}"
             )
+        return value
+    if kind == "name":
+        import re
+
+        if not isinstance(value, str) or not re.fullmatch(r"(?:[A-Za-z0-9][A-Za-z0-9_-]{0,39})?", value):
+            raise bad(_KIND_TEXT["name"])
+        return value
+    if kind == "date_format":
+        import datetime as _dt
+
+        try:
+            ok = isinstance(value, str) and "%" in value and bool(_dt.date(2026, 11, 16).strftime(value))
+        except (ValueError, TypeError):
+            ok = False
+        if not ok:
+            raise bad(_KIND_TEXT["date_format"])
         return value
     if kind == "week":
         if not isinstance(value, str):
@@ -710,6 +793,8 @@ def _type_text(meta: Mapping) -> str:
         "week": "string",
         "str_list": "list of strings",
         "encoding": "string",
+        "name": "string",
+        "date_format": "string",
     }[kind]
     return base + _range_text(meta)
 

@@ -14,7 +14,9 @@ Steps:
 3. Poisson-gamma empirical-Bayes and CAR (BYM2 / Leroux / ICAR) smoothing;
 4. global Moran's I of the empirical-Bayes standardized ratios, local clusters
    with multiple-testing control;
-5. hotspot flags from explicit rules, compared with the previous period in the
+5. the Poisson scan statistic (most likely zone and secondary zones with
+   Monte Carlo p-values), spatial over the window or prospective;
+6. hotspot flags from explicit rules, compared with the previous period in the
    history archive (new, continuing, resolved; periods flagged in a row).
 
 Cautions
@@ -63,18 +65,23 @@ __all__ = [
 
 AREA_COLUMNS = (
     "area_id", "area_name", "period_start", "period_end", "observed", "expected", "population",
+    "rate_per_100k", "rate_low", "rate_high",
     "sir", "sir_low", "sir_high", "eb_rr", "rr", "rr_low", "rr_high", "p_above_1",
-    "cluster", "cluster_p", "flag", "flag_reason", "flag_change", "weeks_flagged",
+    "cluster", "cluster_p", "scan_zone", "scan_p", "flag", "flag_reason", "flag_change", "weeks_flagged",
+    "observed_previous",
     *SPACETIME_COLUMNS,
 )
 
+#: Columns added after ``rate_high`` when a standard population is configured.
+STANDARDIZED_RATE_COLUMNS = ("std_rate_per_100k", "std_rate_low", "std_rate_high")
 #: Columns added to the area table when ``[smoothing] kriging`` is on (after p_above_1 / p_above_threshold).
 KRIGING_COLUMNS = ("kriged_rr", "kriged_rr_low", "kriged_rr_high")
 
 
 #: Columns withheld (blank) in public tables for areas whose count is suppressed:
 #: with the expected count published, each of them gives the count back exactly.
-_DISCLOSING_COLUMNS = ("sir", "sir_low", "sir_high", "eb_rr")
+_DISCLOSING_COLUMNS = ("sir", "sir_low", "sir_high", "eb_rr", "rate_per_100k", "rate_low", "rate_high",
+                       *STANDARDIZED_RATE_COLUMNS)
 
 _ADJUST_LABEL = {"fdr": "FDR q", "bonferroni": "Bonferroni-adjusted p", "none": "unadjusted p"}
 
@@ -90,7 +97,9 @@ class FlagRules:
     An area is flagged when it has at least ``min_observed`` observed cases
     and **either** its posterior probability P(RR > threshold) is at least
     ``min_probability`` **or** (when ``use_clusters``) it belongs to a
-    significant High-High local cluster after multiple-testing control.
+    significant High-High local cluster after multiple-testing control **or**
+    (when ``use_scan``) it lies inside a scan zone whose p-value is below the
+    scan's alpha.
 
     Parameters
     ----------
@@ -104,6 +113,8 @@ class FlagRules:
         Areas with fewer observed cases are never flagged (their reason says so).
     threshold : float, default=1.0
         The relative risk in P(RR > threshold).
+    use_scan : bool, default=True
+        Also flag districts inside a significant scan zone (raised risk).
     forecast_fdr : float, optional
         When given (the space-time model was fitted), a district is also flagged
         "emerging" when its newest week's count lies above its forecast with
@@ -122,6 +133,7 @@ class FlagRules:
     use_clusters: bool = True
     min_observed: int = 0
     threshold: float = 1.0
+    use_scan: bool = True
     forecast_fdr: float | None = None
 
     def __post_init__(self) -> None:
@@ -134,9 +146,13 @@ class FlagRules:
             raise ParameterError(
                 f"The 'use_clusters' parameter of FlagRules must be True or False. Got {self.use_clusters!r} instead."
             )
+        if not isinstance(self.use_scan, bool):
+            raise ParameterError(
+                f"The 'use_scan' parameter of FlagRules must be True or False. Got {self.use_scan!r} instead."
+            )
 
-    def describe(self, *, adjust: str = "fdr", alpha: float = 0.05) -> str:
-        """The rule in one plain sentence (printed on the bulletin)."""
+    def describe(self, *, adjust: str = "fdr", alpha: float = 0.05, scan_alpha: float | None = None) -> str:
+        """The rule in one plain sentence (printed on the bulletin); ``scan_alpha`` None: no scan was run."""
         if self.forecast_fdr is not None:
             parts = [f"its newest week's count is above its forecast from its own past weeks, its neighbours "
                      f"and the regional trend (emerging; FDR q <= {self.forecast_fdr:g})",
@@ -148,6 +164,8 @@ class FlagRules:
             how = {"fdr": "false-discovery-rate control", "bonferroni": "Bonferroni correction",
                    "none": "no multiple-testing adjustment"}[adjust]
             parts.append(f"membership of a High-High local cluster ({how}, alpha = {alpha:g})")
+        if self.use_scan and scan_alpha is not None:
+            parts.append(f"lying inside a scan zone of raised risk with Monte Carlo p < {scan_alpha:g}")
         text = "a district is flagged when " + " OR ".join(parts)
         if self.min_observed > 0:
             text += f", and only if it has at least {self.min_observed} observed case(s)"
@@ -159,6 +177,7 @@ def flag_areas(
     *,
     rules: FlagRules | None = None,
     adjust: str = "fdr",
+    scan_alpha: float = 0.05,
 ) -> pd.DataFrame:
     """Apply the flag rules to a per-area table and say why each area is flagged.
 
@@ -172,6 +191,11 @@ def flag_areas(
         Default ``FlagRules()``.
     adjust : {"fdr", "bonferroni", "none"}, default="fdr"
         The adjustment behind ``cluster_p`` (named in the reason).
+    scan_alpha : float, default=0.05
+        When the table has columns ``scan_zone`` (rank of the scan zone
+        holding the area, 0 for none), ``scan_p`` (that zone's Monte Carlo
+        p-value) and ``scan_high`` (whether the zone has raised risk), areas in
+        a raised-risk zone with ``scan_p < scan_alpha`` meet the scan rule.
 
     Returns
     -------
@@ -207,6 +231,11 @@ def flag_areas(
     by_prob = np.nan_to_num(p, nan=-1.0) >= rules.min_probability
     by_cluster = (table["cluster"].astype(str).to_numpy() == "High-High") & rules.use_clusters
     enough = table["observed"].to_numpy(float) >= rules.min_observed
+    has_scan = rules.use_scan and {"scan_zone", "scan_p"} <= set(table.columns)
+    scan_p = table["scan_p"].to_numpy(float) if has_scan else np.full(len(table), np.nan)
+    scan_zone = table["scan_zone"].to_numpy(np.int64) if has_scan else np.zeros(len(table), dtype=np.int64)
+    high = table["scan_high"].to_numpy(bool) if has_scan and "scan_high" in table.columns else True
+    by_scan = (scan_zone > 0) & (np.nan_to_num(scan_p, nan=1.0) < scan_alpha) & high
     forecast = rules.forecast_fdr is not None and "forecast_q" in table.columns
     if forecast:
         fq = table["forecast_q"].to_numpy(float)
@@ -215,12 +244,13 @@ def flag_areas(
     else:
         fq = fp = np.full(len(table), np.nan)
         by_forecast = np.zeros(len(table), bool)
-    flag = (by_prob | by_cluster | by_forecast) & enough
+    flag = (by_prob | by_cluster | by_scan | by_forecast) & enough
     label = _ADJUST_LABEL[adjust]
     t = _fmt_num(rules.threshold)
     reasons = []
-    for pi, bp, bc, ok, q, bf, fpi, fqi in zip(p, by_prob, by_cluster, enough, table["cluster_p"].to_numpy(float),
-                                            by_forecast, fp, fq):
+    rows = zip(p, by_prob, by_cluster, by_scan, enough, table["cluster_p"].to_numpy(float), scan_zone, scan_p,
+               by_forecast, fp, fq)
+    for pi, bp, bc, bs, ok, q, zone, zp, bf, fpi, fqi in rows:
         met = []
         if bf:
             met.append(f"emerging: newest week above its forecast (mid-p {_fmt_p(fpi)}, FDR q={_fmt_p(fqi)} "
@@ -230,6 +260,8 @@ def flag_areas(
                        + f"P(RR>{t}){_fmt_prob(pi)} >= {rules.min_probability:g}")
         if bc:
             met.append(f"High-High cluster ({label}={_fmt_p(q)})")
+        if bs:
+            met.append(f"inside significant scan zone {zone} (p={_fmt_p(zp)})")
         text = "; ".join(met)
         if met and not ok:
             text = (f"not flagged: fewer than {rules.min_observed} observed cases (min_observed); "
@@ -386,8 +418,19 @@ class PeriodAnalysis:
     rules : FlagRules
     inputs : tuple of dict
         Role, name, path and SHA-256 of each input file.
+    scan : ScanResult or None
+        The scan statistic (None when ``[scan] enabled = false`` or the
+        prospective scan lacked earlier weeks; run_info["scan"] says why).
     run_info : dict
         The provenance record (run.json without the output step's timings).
+        ``run_info["totals"]`` compares the region's cases this period with
+        the previous period and with the average of the weeks before.
+    weekly : pandas.DataFrame
+        The region per ISO week up to the end of the window (at most 104
+        weeks): columns ``cases``, ``population`` and ``rate_per_100k``.
+    settings : dict
+        The settings that make periods comparable (window, model, flag rule),
+        as recorded in the history archive.
     kriging : PoissonKrigingResult or None
         Area-to-area Poisson kriging of the window's counts when ``[smoothing] kriging``
         is on (None when off, or when the risk semivariogram showed nothing to model).
@@ -408,7 +451,10 @@ class PeriodAnalysis:
     rules: FlagRules = field(repr=False)
     inputs: tuple = field(repr=False)
     run_info: dict = field(repr=False)
+    weekly: object = field(default=None, repr=False)
+    settings: dict = field(default_factory=dict, repr=False)
     kriging: object = field(default=None, repr=False)
+    scan: object = field(default=None, repr=False)
     spacetime_fit: object = field(default=None, repr=False)
 
     @property
@@ -442,6 +488,7 @@ class PeriodAnalysis:
             + ("" if self.changes.previous_available else " (not in the archive)") + ".",
             f"Global Moran's I (EB-standardized ratios): {m['statistic']:.3f} "
             f"(expected {m['expected']:.3f}, permutation p = {m['p_value']:.3g}).",
+            *_scan_lines(self.run_info),
         ])
 
     def _repr_html_(self) -> str:
@@ -586,15 +633,16 @@ def analyse_period(
 
     t_start = time.perf_counter()
     run_time = _dt.datetime.now(_dt.timezone.utc).replace(microsecond=0)
-    steps = _Steps(progress, 9)
+    steps = _Steps(progress, 10)
     steps.start("configuration", "reading the configuration")
     cfg = _as_config(config, "analyse_period")
     inputs = _input_files(cfg)
     hashes = [{"role": role, "name": p.name, "path": str(p), "sha256": file_sha256(p)}
               for role, p in inputs if p.is_file()]
-    archive = HistoryArchive(cfg.output.archive)
+    archive = HistoryArchive(cfg.output.archive_path)
     rules = FlagRules(min_probability=cfg.flags.min_probability, use_clusters=cfg.flags.use_clusters,
-                      min_observed=cfg.flags.min_observed, threshold=cfg.smoothing.threshold)
+                      min_observed=cfg.flags.min_observed, threshold=cfg.smoothing.threshold,
+                      use_scan=cfg.flags.use_scan)
 
     run_warnings: list[str] = []
     with _recording_warnings(run_warnings):
@@ -638,6 +686,8 @@ def analyse_period(
                 "their population is zero. Remove them from the boundaries or give them a population."
             )
         sr = standardized_ratio(observed, expected).to_frame()
+        rate_cols = _rates(cases, pop, study.standard_population)
+        weekly, observed_previous, totals = _weekly_and_totals(study, window, ids, pop)
 
         steps.start("smoothing", f"empirical-Bayes and {cfg.smoothing.model.upper()} smoothing")
         from ..models import fit_car
@@ -669,6 +719,11 @@ def analyse_period(
                                            alpha=cl.alpha)
         local = local_result.to_frame().reindex(ids)
 
+        scan_result, scan_note = None, None
+        if cfg.scan.enabled:
+            steps.start("scan", f"scan statistic ({cfg.scan.kind}, {cfg.scan.replicates} replicates)")
+            scan_result, scan_note = _run_scan(cfg, study, key, observed, expected, population, boundaries, graph)
+
         steps.start("flags", "flags and comparison with the previous period")
         table = pd.DataFrame(index=ids)
         table["area_name"] = names
@@ -677,6 +732,8 @@ def analyse_period(
         table["observed"] = observed
         table["expected"] = expected
         table["population"] = population
+        for c_, v_ in rate_cols.items():
+            table[c_] = v_
         table["sir"] = sr["ratio"].to_numpy(float)
         table["sir_low"] = sr["low"].to_numpy(float)
         table["sir_high"] = sr["high"].to_numpy(float)
@@ -693,6 +750,17 @@ def analyse_period(
             table["p_above_threshold"] = car_frame["p_above_threshold"].to_numpy(float)
         table["cluster"] = local["cluster"].astype(str).to_numpy()
         table["cluster_p"] = local["p_adjusted"].to_numpy(float)
+        zone_high = np.zeros(len(ids), dtype=bool)
+        if scan_result is not None:
+            member = scan_result.district_membership().reindex(ids)
+            table["scan_zone"] = member["zone"].to_numpy(np.int64)
+            table["scan_p"] = member["zone_p_value"].to_numpy(float)
+            raised = scan_result.observed > scan_result.expected
+            for m, r in zip(scan_result.members, raised):
+                zone_high[m] = r
+        else:
+            table["scan_zone"] = np.zeros(len(ids), dtype=np.int64)
+            table["scan_p"] = np.nan
         for c in SPACETIME_COLUMNS:
             table[c] = st_cols[c].to_numpy()
         p_exceed = table["p_above_threshold"] if threshold_differs else table["p_above_1"]
@@ -700,17 +768,20 @@ def analyse_period(
             # persistent: the newest week's risk under the space-time model; plus the emerging rule
             rules = dataclasses.replace(rules, forecast_fdr=cfg.spacetime.forecast_fdr)
             p_exceed = pd.Series(st_cols.attrs["p_exceed"], index=ids)
-        flag_input = table.assign(p_exceed=p_exceed)
-        flags = flag_areas(flag_input, rules=rules, adjust=cl.adjust)
+        flags = flag_areas(table.assign(p_exceed=p_exceed, scan_high=zone_high),
+                           rules=rules, adjust=cl.adjust, scan_alpha=cfg.scan.alpha)
         table["flag"] = flags["flag"].to_numpy(bool)
         table["flag_reason"] = flags["flag_reason"].to_numpy(object)
         if st_fit is not None:
             # the kinds count only where the district is flagged (min_observed can hold a flag back)
             table["emerging"] = table["flag"] & flags["flag_reason"].str.contains("emerging:").to_numpy(bool)
             table["persistent"] = table["flag"] & flags["flag_reason"].str.contains("persistent:").to_numpy(bool)
+        settings = period_settings(cfg)
+        archive.check_settings(key, settings, series=cfg.output.series)
         changes = archive.compare(key, table["flag"])
         table["flag_change"] = changes.status.to_numpy(object)
         table["weeks_flagged"] = changes.weeks_flagged.to_numpy(np.int64)
+        table["observed_previous"] = observed_previous
         table.index.name = "area_id"
 
         import geopandas as gpd
@@ -743,14 +814,20 @@ def analyse_period(
         "empirical_bayes": {"prior_mean": eb.prior_mean, "prior_shape": eb.prior_shape},
         "model": _model_summary(car, cfg),
         **({"kriging": kriging_info} if cfg.smoothing.kriging else {}),
+        "scan": _scan_summary(cfg, scan_result, scan_note),
         "spacetime": _spacetime_step.run_info(st_fit, st_weeks, st_note),
-        "flags": {"rule": rules.describe(adjust=cl.adjust, alpha=cl.alpha), **counts,
+        "flags": {"rule": rules.describe(adjust=cl.adjust, alpha=cl.alpha,
+                                         scan_alpha=cfg.scan.alpha if scan_result is not None else None),
+                  **counts,
                   "kinds": {"emerging": int(table["emerging"].sum()), "persistent": int(table["persistent"].sum()),
                             "cluster": int((table["flag"] & (table["cluster"] == "High-High")
                                             & rules.use_clusters).sum())},
                   "previous_period": changes.previous_period,
                   "previous_available": changes.previous_available},
         "suppress_below": cfg.output.suppress_below,
+        "totals": totals,
+        "settings": settings,
+        "series": cfg.output.series,
         "notes": [*getattr(study, "notes", ()), *(f"Local clusters: {n}" for n in local_result.notes),
                   *([st_note] if st_note and cfg.spacetime.enabled else []),
                   *(f"Space-time model: {n}" for n in (st_fit.notes if st_fit is not None else ()))],
@@ -760,8 +837,8 @@ def analyse_period(
     return PeriodAnalysis(
         config=cfg, period=key, weeks=tuple(window), period_start=start_day, period_end=end_day, areas=areas,
         graph=graph, morans_i=moran, local_clusters=local_result, empirical_bayes=eb, car_fit=car,
-        changes=changes, rules=rules, inputs=tuple(hashes), run_info=run_info, kriging=kriging,
-        spacetime_fit=st_fit,
+        changes=changes, rules=rules, inputs=tuple(hashes), run_info=run_info, weekly=weekly,
+        settings=settings, kriging=kriging, scan=scan_result, spacetime_fit=st_fit,
     )
 
 
@@ -815,6 +892,79 @@ def _recording_warnings(store: list[str]):
             warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
 
 
+def period_settings(cfg) -> dict:
+    """The settings that make two periods comparable: window, model and flag rule.
+
+    Flags of periods analysed with different settings are not compared
+    ("new", "resolved", weeks in a row); the history archive records these
+    per period and a run whose settings differ stops (or starts a named
+    series, ``[output] series``).
+
+    Examples
+    --------
+    >>> from areamap.config import RunConfig
+    >>> sorted(period_settings(RunConfig())["flags"])
+    ['min_observed', 'min_probability', 'use_clusters']
+    """
+    sm, fl, cl = cfg.smoothing, cfg.flags, cfg.clusters
+    return {
+        "window_weeks": int(cfg.period.window_weeks),
+        "model": {"model": sm.model, "threshold": float(sm.threshold), "covariates": list(sm.covariates),
+                  "reference": cfg.standardization.reference, "graph": cfg.graph.method},
+        "flags": {"min_probability": float(fl.min_probability), "use_clusters": bool(fl.use_clusters),
+                  "min_observed": int(fl.min_observed)},
+        "clusters": {"statistic": cl.statistic, "adjust": cl.adjust, "alpha": float(cl.alpha)},
+    }
+
+
+def _rates(cases: pd.DataFrame, pop: pd.DataFrame, standard) -> dict[str, np.ndarray]:
+    """Crude rate per 100,000 over the window (exact Poisson limits) and, with a standard
+    population, the directly standardized rate (Fay-Feuer limits)."""
+    from ..rates import crude_rate, direct_standardized_rate
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", AreamapWarning)  # zero-population areas were rejected above
+        crude = crude_rate(cases, pop, per=100_000)
+        out = {"rate_per_100k": crude.rate, "rate_low": crude.low, "rate_high": crude.high}
+        if standard is not None:
+            d = direct_standardized_rate(cases, pop, standard, per=100_000)
+            out.update({"std_rate_per_100k": d.rate, "std_rate_low": d.low, "std_rate_high": d.high})
+    return {k: np.asarray(v, dtype=float) for k, v in out.items()}
+
+
+def _weekly_and_totals(study, window: list[str], ids, pop: pd.DataFrame):
+    """Regional weekly series, each district's count in the previous window, and the period totals."""
+    from ..intake import weeks_ending
+
+    by_week = study.weekly_cases().reindex(index=ids, fill_value=0)
+    weeks = list(by_week.columns)
+    end = weeks.index(window[-1])
+    shown = weeks[max(0, end - 103): end + 1]
+    regional_pop = float(np.nansum(pop.to_numpy(float)))
+    cases = by_week[shown].sum(axis=0).astype(np.int64)
+    weekly = pd.DataFrame({"cases": cases, "population": regional_pop,
+                           "rate_per_100k": 1e5 * cases / regional_pop if regional_pop > 0 else np.nan})
+    weekly.index.name = "week"
+    n = len(window)
+    previous = weeks_ending(window[0], n + 1)[:-1]
+    have_previous = all(w in by_week.columns for w in previous)
+    observed_previous = (by_week[previous].sum(axis=1).to_numpy(float) if have_previous
+                         else np.full(len(ids), np.nan))
+    first = weeks.index(window[0])
+    before = [w for w in weeks[max(0, first - 52): first]]
+    current = int(by_week[window].to_numpy().sum())
+    totals = {
+        "current": current, "weeks": n,
+        "previous": int(np.nansum(observed_previous)) if have_previous else None,
+        "previous_weeks": previous if have_previous else [],
+        "baseline_mean": (float(by_week[before].to_numpy().sum()) / len(before) * n) if before else None,
+        "baseline_weeks": len(before),
+        "population": regional_pop,
+        "rate_per_100k": 1e5 * current / regional_pop if regional_pop > 0 else None,
+    }
+    return weekly, observed_previous, totals
+
+
 def _covariates(boundaries, names) -> pd.DataFrame:
     missing = [c for c in names if c not in boundaries.columns]
     if missing:
@@ -844,3 +994,62 @@ def _model_summary(car, cfg) -> dict:
     return info
 
 
+def _run_scan(cfg, study, key, observed, expected, population, boundaries, graph):
+    """The configured scan; returns (result, note) with result None and a note when it cannot run."""
+    from ..scan import prospective_scan, spatial_scan
+
+    sc = cfg.scan
+    common = dict(population=population, graph=graph if sc.zones == "graph" else None, max_share=sc.max_share,
+                  direction=sc.direction, replicates=sc.replicates, seed=cfg.seed, alpha=sc.alpha,
+                  max_zones=sc.max_zones)
+    if sc.kind == "spatial":
+        return spatial_scan(observed, expected, boundaries, **common), None
+    weekly = study.weekly_cases()
+    weeks = [w for w in weekly.columns if str(w) <= key][-(sc.baseline_weeks + sc.max_weeks):]
+    need = sc.max_weeks + (1 if sc.baseline == "history" else 0)
+    if len(weeks) < need:
+        return None, (f"The prospective scan needs at least {need} weeks up to {key}; the data hold {len(weeks)}. "
+                      "No scan this period.")
+    # expected counts of the window spread evenly over its weeks: the same expected count each week
+    per_week = expected / max(cfg.period.window_weeks, 1)
+    return prospective_scan(weekly[weeks], per_week, boundaries, max_weeks=sc.max_weeks, baseline=sc.baseline,
+                            **common), None
+
+
+def _scan_lines(run_info: dict) -> list[str]:
+    """One summary line on the scan statistic (none when it is switched off)."""
+    info = run_info.get("scan") or {}
+    if not info.get("enabled"):
+        return []
+    if "zones_found" not in info:
+        return [f"Scan statistic: not run ({info.get('note', 'no result')})"]
+    zones = info["zones_found"]
+    if not zones:
+        return ["Scan statistic: no zone departs from the expected counts."]
+    z = zones[0]
+    return [f"Scan statistic ({info['kind']}): {info['significant_zones']} zone(s) with p < {info['alpha']:g}; "
+            f"most likely zone {z['n_districts']} district(s) around {z['centre']}, observed {z['observed']:.0f} vs "
+            f"expected {z['expected']:.1f}, p = {z['p_value']:.3g}."]
+
+
+def _scan_summary(cfg, result, note) -> dict:
+    """run.json record of the scan: settings and reported zones."""
+    sc = cfg.scan
+    info: dict = {"enabled": sc.enabled, "kind": sc.kind, "zones": sc.zones, "max_share": sc.max_share,
+                  "direction": sc.direction, "replicates": sc.replicates, "alpha": sc.alpha,
+                  "max_zones": sc.max_zones, "seed": cfg.seed}
+    if sc.kind == "prospective":
+        info.update(max_weeks=sc.max_weeks, baseline=sc.baseline, baseline_weeks=sc.baseline_weeks)
+    if note:
+        info["note"] = note
+    if result is None:
+        return info
+    frame = result.to_frame().reset_index()
+    frame["members"] = frame["members"].map(lambda t: [str(x) for x in t])
+    frame["centre"] = frame["centre"].astype(str)
+    info.update(candidate_zones=result.n_zones, total_cases=result.total_cases,
+                p_value_kind="Monte Carlo rank p-value (1 + replicates at least as large) / (replicates + 1); "
+                             "secondary zones against the same maxima (conservative)",
+                zones_found=json.loads(frame.to_json(orient="records")),
+                significant_zones=int(result.significant.sum()))
+    return info

@@ -27,10 +27,10 @@ import pandas as pd
 
 from ..archive import FlagChanges, HistoryArchive
 from ..errors import InputError, ParameterError, format_examples
-from .analysis import Progress, _as_config, _input_files, _Steps, analyse_period
+from .analysis import Progress, _as_config, _input_files, _scan_lines, _Steps, analyse_period
 from .render import render_bulletin
 
-__all__ = ["OUTPUT_FILES", "BulletinResult", "run_bulletin"]
+__all__ = ["OUTPUT_FILES", "BulletinResult", "period_folder", "point_to_latest", "run_bulletin"]
 
 #: Files a bulletin folder holds; an existing output folder is only replaced when it
 #: contains nothing else.
@@ -105,6 +105,7 @@ class BulletinResult:
             + ("" if self.changes.previous_available else " (not in the archive)") + ".",
             f"Global Moran's I (EB-standardized ratios): {m['statistic']:.3f} "
             f"(expected {m['expected']:.3f}, permutation p = {m['p_value']:.3g}).",
+            *_scan_lines(self.run_info),
             f"Outputs: {self.out}" + (" (public: small counts suppressed)" if self.public else ""),
         ])
 
@@ -114,6 +115,63 @@ class BulletinResult:
 
 
 # ============================================================================ output folder
+def period_folder(root: str | Path, period: str) -> Path:
+    """The folder of one period under an output root: ``root / "2026-W47"``.
+
+    Examples
+    --------
+    >>> period_folder("out", "2026-W47").as_posix()
+    'out/2026-W47'
+    """
+    from ..intake import parse_week
+
+    return Path(root) / parse_week(period)
+
+
+def _period_folders(root: Path) -> list[str]:
+    import re
+
+    if not root.is_dir():
+        return []
+    return sorted(p.name for p in root.iterdir()
+                  if p.is_dir() and re.fullmatch(r"\d{4}-W\d{2}", p.name) and (p / "index.html").is_file())
+
+
+def point_to_latest(root: str | Path) -> Path | None:
+    """Write ``root/latest.html``: a page that forwards to the newest period's bulletin and lists all.
+
+    The newest period is the largest ISO week among the period folders, so
+    re-running an older period does not move the pointer. The file is
+    replaced atomically. Returns its path (None when there is no period yet).
+    """
+    root = Path(root)
+    periods = _period_folders(root)
+    if not periods:
+        return None
+    latest = periods[-1]
+    items = "".join(f'<li><a href="{html.escape(p)}/index.html">{html.escape(p)}</a></li>'
+                    for p in reversed(periods))
+    page = (
+        '<!DOCTYPE html>\n<html lang="en"><head><meta charset="utf-8">'
+        f'<meta http-equiv="refresh" content="0; url={html.escape(latest)}/index.html">'
+        f"<title>Latest bulletin: {html.escape(latest)}</title></head><body>"
+        f'<p>Latest bulletin: <a href="{html.escape(latest)}/index.html">{html.escape(latest)}</a></p>'
+        f"<h1>All periods</h1><ul>{items}</ul></body></html>\n"
+    )
+    target = root / "latest.html"
+    tmp = root / f".latest.html.tmp-{uuid.uuid4().hex[:8]}"
+    tmp.write_text(page, encoding="utf-8")
+    os.replace(tmp, target)
+    return target
+
+
+def _check_root(root: Path) -> None:
+    """The output root of per-period folders must be a folder (or not exist yet); the period folder
+    itself is checked like a plain output folder once the period is known."""
+    if root.exists() and not root.is_dir():
+        raise InputError(f"The output path {root} exists and is a file. Give a folder for the bulletin (--out DIR).")
+
+
 def _check_out_dir(out: Path, inputs: list[tuple[str, Path]]) -> None:
     """Refuse output folders that would overwrite anything but a previous bulletin."""
     if out.exists() and not out.is_dir():
@@ -173,9 +231,12 @@ def run_bulletin(
         ISO week ending the analysed window (``"2026-W47"``) or ``"latest"``;
         default ``[period] week`` of the configuration.
     out : str or Path, optional
-        Output folder; default ``bulletin`` beside the configuration file. An
-        existing folder is replaced only when it holds nothing but bulletin
-        outputs.
+        Output folder; default ``bulletin`` beside the configuration file.
+        With ``[output] per_period = true`` (the default) each period goes
+        into its own subfolder (``out/2026-W47/``) and ``out/latest.html``
+        points to the newest period; otherwise the files go straight into
+        ``out``. An existing period folder is replaced only when it holds
+        nothing but bulletin outputs.
     public : bool, default=False
         Suppress small counts (1 to ``suppress_below - 1``) in areas.csv and
         areas.gpkg too (the HTML always suppresses them) and withhold the
@@ -212,11 +273,19 @@ def run_bulletin(
     cfg = _as_config(config, "run_bulletin")
     if not isinstance(public, bool):
         raise ParameterError(f"The 'public' parameter of run_bulletin must be True or False. Got {public!r} instead.")
-    out_dir = Path(out) if out is not None else cfg.base_dir / "bulletin"
-    out_dir = out_dir.expanduser().absolute()
-    _check_out_dir(out_dir, [*_input_files(cfg), ("history archive", Path(cfg.output.archive))])
+    root = Path(out) if out is not None else cfg.base_dir / "bulletin"
+    root = root.expanduser().absolute()
+    protected = [*_input_files(cfg), ("history archive", Path(cfg.output.archive_path))]
+    per_period = cfg.output.per_period
+    if per_period:
+        _check_root(root)
+    else:
+        _check_out_dir(root, protected)
 
     analysis = analyse_period(cfg, period=period, progress=progress)
+    out_dir = period_folder(root, analysis.period) if per_period else root
+    if per_period:
+        _check_out_dir(out_dir, protected)
     steps = _Steps(progress, 10)
     steps.count = 8
     steps.start("outputs", "writing index.html, areas.csv, areas.gpkg, run.json")
@@ -229,13 +298,16 @@ def run_bulletin(
         # the folder is moved into place while the archive's write lock is held: two runs publish in turn,
         # and a failed move rolls the archive back
         table = analysis.to_frame()
-        HistoryArchive(cfg.output.archive).write_period(
+        HistoryArchive(cfg.output.archive_path).write_period(
             analysis.period, table, period_start=analysis.period_start, period_end=analysis.period_end,
             window_weeks=analysis.window_weeks, tool_version=__version__,
+            settings=analysis.settings, series=cfg.output.series,
             before_commit=lambda: _publish(tmp, out_dir))
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
+    if per_period:
+        point_to_latest(root)
     steps.stop()
     run_info["timings_seconds"]["archive"] = steps.timings.get("archive")
     return BulletinResult(out=out_dir, period=analysis.period, period_start=analysis.period_start,
