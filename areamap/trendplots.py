@@ -63,15 +63,15 @@ def plot_regional_trend(fit, *, ax=None):
                     label="regional trend, 95% interval")
     ax.plot(x, wk["trend_cases"], color=_BAND, linewidth=2, label="regional trend (model)")
     ax.plot(x, wk["observed"], "o-", color=_OBSERVED, linewidth=1, markersize=4, label="observed cases")
-    ax.set_xticks(x, _week_labels(wk.index), rotation=45, ha="right", fontsize=8)
+    ax.set_xticks(x, _week_labels(wk.index), rotation=45, ha="right", fontsize=9)
     ax.set_ylabel("cases per week")
     ax.set_ylim(bottom=0)
-    ax.legend(loc="upper left", fontsize=8, frameon=False)
+    ax.legend(loc="upper left", fontsize=9, frameon=False)
     ax.set_title("Cases per week in the region and the model's regional trend", fontsize=10)
     return ax
 
 
-def plot_district_trends(fit, districts, *, names=None, ncols: int = 4, max_panels: int = 12):
+def plot_district_trends(fit, districts, *, names=None, ncols: int = 3, max_panels: int = 12):
     """Small multiples: each district's weekly counts against the model's band and its forecast.
 
     For every week the band is E_it times the approximate 95% band of RR_it from the fit
@@ -85,7 +85,7 @@ def plot_district_trends(fit, districts, *, names=None, ncols: int = 4, max_pane
     districts : sequence of district ids
         At most ``max_panels`` are drawn (in the order given).
     names : mapping of id to display name, optional
-    ncols : int, default=4
+    ncols : int, default=3
     max_panels : int, default=12
 
     Returns
@@ -104,7 +104,7 @@ def plot_district_trends(fit, districts, *, names=None, ncols: int = 4, max_pane
     n = max(len(districts), 1)
     ncols = min(ncols, n)
     nrows = int(np.ceil(n / ncols))
-    fig, axes = plt.subplots(nrows, ncols, figsize=(2.6 * ncols, 2.1 * nrows), squeeze=False,
+    fig, axes = plt.subplots(nrows, ncols, figsize=(2.9 * ncols, 2.5 * nrows), squeeze=False,
                              layout="constrained")
     w = len(fit.weeks)
     x = np.arange(w)
@@ -120,9 +120,9 @@ def plot_district_trends(fit, districts, *, names=None, ncols: int = 4, max_pane
                         yerr=[[fit.forecast_mean[i] - fit.forecast_low[i]], [fit.forecast_high[i] - fit.forecast_mean[i]]],
                         fmt="s", color=_FORECAST, markersize=4, capsize=2, linewidth=1.2)
         label = names.get(d, d) if names is not None else d
-        ax.set_title(str(label), fontsize=8)
-        ax.set_xticks([0, w - 1], [str(fit.weeks[0]), str(fit.weeks[-1])], fontsize=6)
-        ax.tick_params(axis="y", labelsize=7)
+        ax.set_title(str(label), fontsize=10)
+        ax.set_xticks([0, w - 1], [str(fit.weeks[0]), str(fit.weeks[-1])], fontsize=10)
+        ax.tick_params(axis="y", labelsize=10)
         ax.set_ylim(bottom=0)
     for ax in axes.ravel()[len(districts):]:
         ax.set_visible(False)
@@ -136,5 +136,5 @@ def plot_district_trends(fit, districts, *, names=None, ncols: int = 4, max_pane
     handles = [Line2D([], [], marker="o", linestyle="", color=_OBSERVED, label="observed"),
                Patch(color=_BAND, alpha=0.4, label="model, 95% band"),
                Line2D([], [], marker="s", color=_FORECAST, label="forecast of newest week, 95% interval")]
-    fig.legend(handles=handles, loc="outside lower center", ncols=3, fontsize=7, frameon=False)
+    fig.legend(handles=handles, loc="outside lower center", ncols=2, fontsize=10, frameon=False)
     return fig

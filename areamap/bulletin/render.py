@@ -286,7 +286,16 @@ def _pct(p: float) -> str:
 def _reason(row, words, rules: FlagRules, adjust: str, p_exceed: float) -> str:
     """The flag reason from the numbers, in the audience's words."""
     met = []
-    if np.isfinite(p_exceed) and p_exceed >= rules.min_probability:
+    if rules.forecast_fdr is not None:  # space-time rules: emerging and persistent (newest week)
+        if bool(getattr(row, "emerging", False)):
+            met.append(words("reason_emerging", q=_p_relation(row.forecast_q)))
+        p_week = float(getattr(row, "week_p_above_1", np.nan))
+        if bool(getattr(row, "persistent", False)):
+            shown = p_week if np.isfinite(p_week) else rules.min_probability
+            met.append(words("reason_persistent", t=f"{rules.threshold:g}", p=_fmt_prob(shown).lstrip("="),
+                             cut=f"{rules.min_probability:g}", cut_pct=_pct(rules.min_probability),
+                             p_pct=_pct(shown)))
+    elif np.isfinite(p_exceed) and p_exceed >= rules.min_probability:
         met.append(words("reason_probability", t=f"{rules.threshold:g}", p=_fmt_prob(p_exceed).lstrip("="),
                          cut=f"{rules.min_probability:g}", cut_pct=_pct(rules.min_probability), p_pct=_pct(p_exceed)))
     if rules.use_clusters and str(row.cluster) == "High-High":
