@@ -18,7 +18,17 @@ from .autocorrelation import (
     rate_morans_i,
 )
 from .archive import FlagChanges, HistoryArchive
-from .bulletin import BulletinResult, FlagRules, file_sha256, flag_areas, run_bulletin, suppress_counts
+from .bulletin import (
+    BulletinResult,
+    FlagRules,
+    PeriodAnalysis,
+    analyse_period,
+    file_sha256,
+    flag_areas,
+    render_bulletin,
+    run_bulletin,
+    suppress_counts,
+)
 from .config import RunConfig, load_config
 from .demo import write_demo
 from .errors import (
@@ -124,6 +134,7 @@ __all__ = [
     # CAR models
     "CarPriors", "CarFit", "fit_car",
     # bulletin and history
-    "run_bulletin", "BulletinResult", "FlagRules", "flag_areas", "suppress_counts", "file_sha256",
+    "analyse_period", "PeriodAnalysis", "render_bulletin", "run_bulletin", "BulletinResult", "FlagRules",
+    "flag_areas", "suppress_counts", "file_sha256",
     "HistoryArchive", "FlagChanges",
 ]

@@ -11,15 +11,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from areamap.bulletin import (
-    AREA_COLUMNS,
-    FlagRules,
-    _check_out_dir,
-    _publish,
-    file_sha256,
-    flag_areas,
-    suppress_counts,
-)
+from areamap.bulletin import AREA_COLUMNS, FlagRules, file_sha256, flag_areas, suppress_counts
+from areamap.bulletin.publish import _check_out_dir, _publish
 from areamap.errors import InputError, ParameterError
 
 
@@ -410,7 +403,7 @@ def test_bad_input_exits_2_and_changes_nothing(demo_copy, breakage, capsys):
 
 @pytest.mark.slow
 def test_internal_failure_exits_1_and_keeps_previous_bulletin(demo_copy, monkeypatch, capsys):
-    import areamap.bulletin as bulletin
+    import areamap.bulletin.render as bulletin
     from areamap.cli import main
 
     def broken(*args, **kwargs):
@@ -483,7 +476,7 @@ def test_bad_period_text(demo_copy, capsys):
 def test_warnings_are_recorded_and_passed_on():
     import warnings
 
-    from areamap.bulletin import _recording_warnings
+    from areamap.bulletin.analysis import _recording_warnings
     from areamap.errors import DataWarning
 
     store: list[str] = []
@@ -533,3 +526,24 @@ def _write_config(folder: Path, name: str, text: str) -> Path:
     path = folder / name
     path.write_text(text, encoding="utf-8")
     return path
+
+
+@pytest.mark.slow
+def test_analyse_period_writes_nothing_and_reproduces_the_bulletin(demo_run):
+    """analyse_period computes what run_bulletin publishes, and changes no file (separation of computing
+    from publishing)."""
+    from areamap.bulletin import analyse_period
+
+    folder = demo_run["folder"]
+    before = {p: _sha(p) for p in folder.rglob("*") if p.is_file()}
+    analysis = analyse_period(demo_run["config"], period="2026-W47")
+    assert {p: _sha(p) for p in folder.rglob("*") if p.is_file()} == before
+    published = pd.read_csv(demo_run["out"] / "areas.csv", dtype={"area_id": str}).set_index("area_id")
+    mine = analysis.to_frame()
+    # the archive now holds W47 itself; the comparison is with W46, so flags and changes agree
+    for column in ("observed", "expected", "sir", "eb_rr", "rr", "rr_low", "rr_high", "p_above_1", "cluster_p"):
+        np.testing.assert_allclose(mine[column].to_numpy(float), published[column].to_numpy(float),
+                                   rtol=1e-9)  # CSV holds 10 significant digits
+    assert mine["cluster"].tolist() == published["cluster"].tolist()
+    assert mine["flag"].tolist() == published["flag"].astype(str).str.lower().eq("true").tolist()
+    assert "Analysis of 2026-W47" in analysis.summary()

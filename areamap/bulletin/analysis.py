@@ -1,0 +1,747 @@
+"""Computing one bulletin period: everything up to, and not including, writing files.
+
+:func:`analyse_period` chains the analysis of one period and returns a
+:class:`PeriodAnalysis`; it reads the inputs and the history archive and writes
+nothing. :mod:`areamap.bulletin.render` turns the analysis into the page and
+tables, and :mod:`areamap.bulletin.publish` moves them into place together
+with the archive transaction.
+
+Steps:
+
+1. intake and validation (:func:`~areamap.intake.load_study`), neighbour graph;
+2. expected counts by indirect standardization and standardized ratios with
+   exact Poisson intervals;
+3. Poisson-gamma empirical-Bayes and CAR (BYM2 / Leroux / ICAR) smoothing;
+4. global Moran's I of the empirical-Bayes standardized ratios, local clusters
+   with multiple-testing control;
+5. hotspot flags from explicit rules, compared with the previous period in the
+   history archive (new, continuing, resolved; periods flagged in a row).
+
+Cautions
+--------
+The bulletin is an analytic aid, not a public-health directive: decisions
+rest with the responsible health authority and local rules. Ratios of
+districts with few expected cases are unstable (small numbers); district
+results do not describe individuals (ecological fallacy); a 95% interval or a
+posterior probability expresses uncertainty under the model, not certainty.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import dataclasses
+import datetime as _dt
+import hashlib
+import html
+import json
+import math
+import os
+import time
+import warnings
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from .._params import check_interval, check_positive_int
+from ..archive import FlagChanges, HistoryArchive
+from ..errors import AreamapError, AreamapWarning, InputError, ParameterError, format_examples
+
+__all__ = [
+    "AREA_COLUMNS",
+    "FlagRules",
+    "PeriodAnalysis",
+    "analyse_period",
+    "file_sha256",
+    "flag_areas",
+    "suppress_counts",
+]
+
+AREA_COLUMNS = (
+    "area_id", "area_name", "period_start", "period_end", "observed", "expected", "population",
+    "sir", "sir_low", "sir_high", "eb_rr", "rr", "rr_low", "rr_high", "p_above_1",
+    "cluster", "cluster_p", "flag", "flag_reason", "flag_change", "weeks_flagged",
+)
+
+
+#: Columns withheld (blank) in public tables for areas whose count is suppressed:
+#: with the expected count published, each of them gives the count back exactly.
+_DISCLOSING_COLUMNS = ("sir", "sir_low", "sir_high", "eb_rr")
+
+_ADJUST_LABEL = {"fdr": "FDR q", "bonferroni": "Bonferroni-adjusted p", "none": "unadjusted p"}
+
+Progress = Callable[[str], None]
+
+
+
+# ============================================================================ flags
+@dataclass(frozen=True)
+class FlagRules:
+    """Explicit hotspot-flag rules (the ``[flags]`` section).
+
+    An area is flagged when it has at least ``min_observed`` observed cases
+    and **either** its posterior probability P(RR > threshold) is at least
+    ``min_probability`` **or** (when ``use_clusters``) it belongs to a
+    significant High-High local cluster after multiple-testing control.
+
+    Parameters
+    ----------
+    min_probability : float, default=0.8
+        Probability cut-off. 0.8 follows Richardson et al. (2004), who found
+        P(RR > 1) > 0.8 a reasonable trade-off between false positives and
+        power for BYM-type models.
+    use_clusters : bool, default=True
+        Also flag members of High-High clusters.
+    min_observed : int, default=0
+        Areas with fewer observed cases are never flagged (their reason says so).
+    threshold : float, default=1.0
+        The relative risk in P(RR > threshold).
+
+    References
+    ----------
+    Richardson S, Thomson A, Best N, Elliott P (2004). Interpreting posterior
+    relative risk estimates in disease-mapping studies. Environmental Health
+    Perspectives 112(9):1016-1025.
+    """
+
+    min_probability: float = 0.8
+    use_clusters: bool = True
+    min_observed: int = 0
+    threshold: float = 1.0
+
+    def __post_init__(self) -> None:
+        check_interval(self.min_probability, "min_probability", "FlagRules", low=0, high=1, closed="right")
+        check_positive_int(self.min_observed, "min_observed", "FlagRules", minimum=0)
+        check_interval(self.threshold, "threshold", "FlagRules", low=0)
+        if not isinstance(self.use_clusters, bool):
+            raise ParameterError(
+                f"The 'use_clusters' parameter of FlagRules must be True or False. Got {self.use_clusters!r} instead."
+            )
+
+    def describe(self, *, adjust: str = "fdr", alpha: float = 0.05) -> str:
+        """The rule in one plain sentence (printed on the bulletin)."""
+        parts = [f"posterior P(RR > {self.threshold:g}) >= {self.min_probability:g}"]
+        if self.use_clusters:
+            how = {"fdr": "false-discovery-rate control", "bonferroni": "Bonferroni correction",
+                   "none": "no multiple-testing adjustment"}[adjust]
+            parts.append(f"membership of a High-High local cluster ({how}, alpha = {alpha:g})")
+        text = "a district is flagged when " + " OR ".join(parts)
+        if self.min_observed > 0:
+            text += f", and only if it has at least {self.min_observed} observed case(s)"
+        return text[0].upper() + text[1:] + "."
+
+
+def flag_areas(
+    table: pd.DataFrame,
+    *,
+    rules: FlagRules | None = None,
+    adjust: str = "fdr",
+) -> pd.DataFrame:
+    """Apply the flag rules to a per-area table and say why each area is flagged.
+
+    Parameters
+    ----------
+    table : pandas.DataFrame
+        One row per area with columns ``observed``, ``p_exceed`` (posterior
+        P(RR > threshold)), ``cluster`` (label from the local cluster
+        analysis) and ``cluster_p`` (its adjusted p-value).
+    rules : FlagRules, optional
+        Default ``FlagRules()``.
+    adjust : {"fdr", "bonferroni", "none"}, default="fdr"
+        The adjustment behind ``cluster_p`` (named in the reason).
+
+    Returns
+    -------
+    pandas.DataFrame
+        Same index; columns ``flag`` (bool) and ``flag_reason`` (plain text:
+        every rule met, e.g. ``"P(RR>1)=0.93 >= 0.8; High-High cluster (FDR
+        q=0.012)"``; for areas held back by ``min_observed`` the reason says
+        so; empty otherwise).
+
+    Examples
+    --------
+    >>> t = pd.DataFrame({"observed": [12, 3, 0], "p_exceed": [0.93, 0.85, 0.1],
+    ...                   "cluster": ["High-High", "not significant", "Low-Low"],
+    ...                   "cluster_p": [0.012, 0.4, 0.03]}, index=["A", "B", "C"])
+    >>> out = flag_areas(t, rules=FlagRules(min_observed=5))
+    >>> out["flag"].tolist()
+    [True, False, False]
+    >>> out.loc["A", "flag_reason"]
+    'P(RR>1)=0.93 >= 0.8; High-High cluster (FDR q=0.012)'
+    """
+    rules = rules if rules is not None else FlagRules()
+    missing = [c for c in ("observed", "p_exceed", "cluster", "cluster_p") if c not in table.columns]
+    if missing:
+        raise ParameterError(
+            f"The 'table' parameter of flag_areas needs columns observed, p_exceed, cluster, cluster_p; "
+            f"missing {format_examples(missing)}."
+        )
+    if adjust not in _ADJUST_LABEL:
+        raise ParameterError(
+            f"The 'adjust' parameter of flag_areas must be one of 'fdr', 'bonferroni', 'none'. Got {adjust!r} instead."
+        )
+    p = table["p_exceed"].to_numpy(float)
+    by_prob = np.nan_to_num(p, nan=-1.0) >= rules.min_probability
+    by_cluster = (table["cluster"].astype(str).to_numpy() == "High-High") & rules.use_clusters
+    enough = table["observed"].to_numpy(float) >= rules.min_observed
+    flag = (by_prob | by_cluster) & enough
+    label = _ADJUST_LABEL[adjust]
+    t = _fmt_num(rules.threshold)
+    reasons = []
+    for pi, bp, bc, ok, q in zip(p, by_prob, by_cluster, enough, table["cluster_p"].to_numpy(float)):
+        met = []
+        if bp:
+            met.append(f"P(RR>{t}){_fmt_prob(pi)} >= {rules.min_probability:g}")
+        if bc:
+            met.append(f"High-High cluster ({label}={_fmt_p(q)})")
+        text = "; ".join(met)
+        if met and not ok:
+            text = (f"not flagged: fewer than {rules.min_observed} observed cases (min_observed); "
+                    f"otherwise {text}")
+        reasons.append(text)
+    return pd.DataFrame({"flag": flag, "flag_reason": reasons}, index=table.index)
+
+
+def _fmt_prob(p: float) -> str:
+    """'=0.93'; near 1 more digits ('=0.997') and never '=1.00' for a probability below 1."""
+    if p >= 0.9995:
+        return ">0.999" if p < 1 else "=1"
+    return f"={p:.3f}" if p >= 0.995 else f"={p:.2f}"
+
+
+def _fmt_p(q: float) -> str:
+    if not np.isfinite(q):
+        return "n/a"
+    return f"{q:.3f}" if q >= 0.001 else "<0.001"
+
+
+def _fmt_num(x: float) -> str:
+    return f"{x:g}"
+
+
+# ============================================================================ suppression
+def suppress_counts(counts, *, threshold: int = 5) -> pd.Series:
+    """Counts as text with small counts hidden: 1 to threshold-1 become ``"<threshold"``.
+
+    Zero stays ``"0"`` (common practice: a zero is not usually disclosive of a
+    person, and hiding it would hide true absence). ``threshold`` 0 or 1 hides
+    nothing. Complementary suppression is **not** done: a total or a
+    neighbouring table may still allow a hidden count to be back-calculated.
+
+    Parameters
+    ----------
+    counts : array-like or pandas.Series of int
+    threshold : int, default=5
+
+    Returns
+    -------
+    pandas.Series of str (index kept when a Series is given)
+
+    Examples
+    --------
+    >>> suppress_counts([0, 1, 4, 5, 17]).tolist()
+    ['0', '<5', '<5', '5', '17']
+    """
+    threshold = check_positive_int(threshold, "threshold", "suppress_counts", minimum=0)
+    index = counts.index if isinstance(counts, pd.Series) else None
+    values = np.asarray(counts, dtype=float)
+    text = np.array([str(int(v)) if np.isfinite(v) else "" for v in values], dtype=object)
+    hide = (values >= 1) & (values < threshold)
+    text[hide] = f"<{threshold}"
+    return pd.Series(text, index=index, dtype=object)
+
+
+def _suppressed_mask(counts, threshold: int) -> np.ndarray:
+    values = np.asarray(counts, dtype=float)
+    return (values >= 1) & (values < threshold)
+
+
+# ============================================================================ provenance
+def file_sha256(path: str | Path) -> str:
+    """SHA-256 hex digest of a file, read in 1 MiB blocks.
+
+    Examples
+    --------
+    >>> import tempfile, pathlib
+    >>> p = pathlib.Path(tempfile.mkdtemp()) / "x.txt"
+    >>> _ = p.write_bytes(b"abc")
+    >>> file_sha256(p)[:16]   # SHA-256("abc"), FIPS 180-2 appendix B.1
+    'ba7816bf8f01cfea'
+    """
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()
+
+
+def _input_files(config) -> list[tuple[str, Path]]:
+    """(role, path) of every input file the configuration names (shapefile sidecars included)."""
+    items: list[tuple[str, Path]] = []
+    if config.path is not None:
+        items.append(("configuration", Path(config.path)))
+    b = Path(config.boundaries.file)
+    items.append(("boundaries", b))
+    if b.suffix.lower() == ".shp":
+        for side in sorted(b.parent.glob(b.stem + ".*")):
+            if side != b and side.is_file():
+                items.append(("boundaries (sidecar)", side))
+    items.append(("cases", Path(config.cases.file)))
+    items.append(("population", Path(config.population.file)))
+    st = config.standardization
+    if st.reference == "external" and st.rates_file is not None:
+        items.append(("reference rates", Path(st.rates_file)))
+    if st.standard_population_file is not None:
+        items.append(("standard population", Path(st.standard_population_file)))
+    if config.graph.extra_links_file is not None:
+        items.append(("extra neighbour links", Path(config.graph.extra_links_file)))
+    return items
+
+
+def _jsonable(obj):
+    """Configuration dataclasses, paths, numpy scalars -> JSON-ready values."""
+    if dataclasses.is_dataclass(obj) and not isinstance(obj, type):
+        return {f.name: _jsonable(getattr(obj, f.name)) for f in dataclasses.fields(obj)}
+    if isinstance(obj, Mapping):
+        return {str(k): _jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, list | tuple):
+        return [_jsonable(v) for v in obj]
+    if isinstance(obj, Path):
+        return str(obj)
+    if isinstance(obj, np.bool_ | bool):
+        return bool(obj)
+    if isinstance(obj, np.integer):
+        return int(obj)
+    if isinstance(obj, np.floating | float):
+        x = float(obj)
+        return x if math.isfinite(x) else None
+    if isinstance(obj, _dt.date):
+        return obj.isoformat()
+    return obj
+
+
+# ============================================================================ result
+@dataclass(frozen=True, eq=False)
+class PeriodAnalysis:
+    """The analysis of one bulletin period (nothing written yet).
+
+    Attributes
+    ----------
+    config : RunConfig
+        The configuration the period was analysed with.
+    period : str
+        ISO week ending the analysed window, e.g. ``"2026-W47"``.
+    weeks : tuple of str
+        The weeks of the window, oldest first.
+    period_start, period_end : datetime.date
+        First and last day of the window.
+    areas : geopandas.GeoDataFrame
+        The per-area table (unsuppressed counts), index = area ids, columns
+        :data:`AREA_COLUMNS` (except area_id, the index) plus geometry.
+    graph : AreaGraph
+        The neighbour graph.
+    morans_i : GlobalAutocorrelation
+        Global Moran's I of the EB-standardized ratios.
+    local_clusters : LocalClusterResult
+    empirical_bayes : PoissonGammaResult
+    car_fit : CarFit
+    changes : FlagChanges
+        Comparison with the previous period in the archive.
+    rules : FlagRules
+    inputs : tuple of dict
+        Role, name, path and SHA-256 of each input file.
+    run_info : dict
+        The provenance record (run.json without the output step's timings).
+    """
+
+    config: object
+    period: str
+    weeks: tuple
+    period_start: _dt.date
+    period_end: _dt.date
+    areas: object = field(repr=False)
+    graph: object = field(repr=False)
+    morans_i: object = field(repr=False)
+    local_clusters: object = field(repr=False)
+    empirical_bayes: object = field(repr=False)
+    car_fit: object = field(repr=False)
+    changes: FlagChanges = field(repr=False)
+    rules: FlagRules = field(repr=False)
+    inputs: tuple = field(repr=False)
+    run_info: dict = field(repr=False)
+
+    @property
+    def window_weeks(self) -> int:
+        return len(self.weeks)
+
+    @property
+    def threshold_differs(self) -> bool:
+        """Whether [smoothing] threshold is not 1 (areas then carry ``p_above_threshold``)."""
+        return "p_above_threshold" in self.areas.columns
+
+    @property
+    def flagged(self) -> pd.DataFrame:
+        """Rows of the flagged areas (without geometry)."""
+        t = self.to_frame()
+        return t[t["flag"]]
+
+    def to_frame(self) -> pd.DataFrame:
+        """The per-area table without geometry (unsuppressed)."""
+        return pd.DataFrame(self.areas.drop(columns="geometry"))
+
+    def summary(self) -> str:
+        """A few lines: period, flags and changes, Moran's I."""
+        c = self.changes.counts
+        m = self.run_info["morans_i"]
+        return "\n".join([
+            f"Analysis of {self.period} ({self.period_start} to {self.period_end}, "
+            f"{self.window_weeks} week(s)): {len(self.areas)} districts.",
+            f"Flagged: {c['total']} ({c['new']} new, {c['continuing']} continuing); "
+            f"{c['resolved']} resolved since {self.changes.previous_period}"
+            + ("" if self.changes.previous_available else " (not in the archive)") + ".",
+            f"Global Moran's I (EB-standardized ratios): {m['statistic']:.3f} "
+            f"(expected {m['expected']:.3f}, permutation p = {m['p_value']:.3g}).",
+        ])
+
+    def _repr_html_(self) -> str:
+        lines = "".join(f"<li>{html.escape(s)}</li>" for s in self.summary().splitlines())
+        return f"<ul>{lines}</ul>"
+
+# ============================================================================ pipeline
+class _Steps:
+    """Step timer that also reports progress."""
+
+    def __init__(self, progress: Progress | None, total: int) -> None:
+        self.progress = progress
+        self.total = total
+        self.count = 0
+        self.timings: dict[str, float] = {}
+        self._name: str | None = None
+        self._t0 = 0.0
+
+    def start(self, name: str, message: str) -> None:
+        self.stop()
+        self.count += 1
+        self._name = name
+        self._t0 = time.perf_counter()
+        if self.progress is not None:
+            self.progress(f"[{self.count}/{self.total}] {message}")
+
+    def stop(self) -> None:
+        if self._name is not None:
+            self.timings[self._name] = round(time.perf_counter() - self._t0, 4)
+            self._name = None
+
+
+def _resolve_period(study, requested: str | None, config) -> tuple[str, list[str]]:
+    """The period key (last week of the window) and the weeks of the window."""
+    from ..intake import parse_week, weeks_ending
+
+    k = config.period.window_weeks
+    wanted = requested if requested is not None else config.period.week
+    if not study.weeks:
+        raise InputError("The cases file has no weeks with data; nothing to report.")
+    if wanted in (None, "latest"):
+        key = study.weeks[-1]
+    else:
+        try:
+            key = parse_week(wanted)
+        except (AreamapError, ValueError):
+            raise InputError(
+                f"The period {wanted!r} is not an ISO week. Give it as YYYY-Www, e.g. --period 2026-W47."
+            ) from None
+    if key not in study.weeks:
+        raise InputError(
+            f"The period {key} is outside the weeks of the cases file ({study.weeks[0]} to {study.weeks[-1]}). "
+            "Choose a week within that range (or 'latest')."
+        )
+    window = list(weeks_ending(key, k))
+    before = [w for w in window if w < study.weeks[0]]
+    if before:
+        raise InputError(
+            f"The rolling window of {k} weeks ending {key} starts at {window[0]}, before the first week of the "
+            f"cases file ({study.weeks[0]}). Choose a later period or a shorter [period] window_weeks."
+        )
+    return key, window
+
+
+def _reference_rates(config, study) -> pd.Series | None:
+    """External reference rates per person per week by age group, or None (internal reference)."""
+    if config.standardization.reference != "external":
+        return None
+    return study.reference_rates
+
+
+def _priors(config):
+    from ..models import CarPriors
+
+    p = config.smoothing.priors
+    return CarPriors(sigma_upper=p.sigma_upper, sigma_tail=p.sigma_tail, phi_upper=p.phi_upper,
+                     phi_tail=p.phi_tail, intercept_sd=p.intercept_sd, coefficient_sd=p.coefficient_sd)
+
+def _as_config(config, caller: str):
+    from ..config import RunConfig, load_config
+
+    if isinstance(config, RunConfig):
+        return config
+    if isinstance(config, str | os.PathLike):
+        return load_config(config)
+    raise ParameterError(
+        f"The 'config' parameter of {caller} must be a path or a RunConfig. Got {type(config).__name__} instead."
+    )
+
+
+def analyse_period(
+    config,
+    *,
+    period: str | None = None,
+    progress: Progress | None = None,
+) -> PeriodAnalysis:
+    """Analyse one bulletin period and return its results; write nothing.
+
+    This is everything :func:`~areamap.bulletin.run_bulletin` computes, with the
+    same configuration, window, permutations and seed, so its tables reproduce
+    the published bulletin's numbers. The history archive is only read (to
+    compare the flags with the previous period).
+
+    Parameters
+    ----------
+    config : str, Path or RunConfig
+        The run configuration (a TOML file path or a loaded :class:`~areamap.config.RunConfig`).
+    period : str, optional
+        ISO week ending the analysed window (``"2026-W47"``) or ``"latest"``;
+        default ``[period] week`` of the configuration.
+    progress : callable, optional
+        Called with a short message at the start of each step.
+
+    Returns
+    -------
+    PeriodAnalysis
+
+    Raises
+    ------
+    AreamapError
+        Unusable input or configuration (InputError, ConfigError, GraphError),
+        a model that cannot be fitted (ModelError) or a damaged archive
+        (ArchiveError).
+
+    Notes
+    -----
+    Steps: expected counts :math:`E_i = \\sum_a n_{ia} r_a` (indirect
+    standardization, reference rates :math:`r_a` from the window's own counts or
+    external rates times the window length); SIR :math:`O_i/E_i` with exact
+    Poisson limits; Poisson-gamma EB; CAR model; Moran's I and local clusters
+    on Assunção-Reis EB-standardized ratios (expected counts as denominators,
+    so the age structure is accounted for); flags; comparison with the
+    previous period.
+
+    Examples
+    --------
+    >>> from areamap.demo import write_demo                          # doctest: +SKIP
+    >>> analysis = analyse_period(write_demo("demo"))                 # doctest: +SKIP
+    >>> analysis.flagged[["area_name", "rr", "flag_reason"]]          # doctest: +SKIP
+    """
+    from .. import __version__
+
+    t_start = time.perf_counter()
+    run_time = _dt.datetime.now(_dt.timezone.utc).replace(microsecond=0)
+    steps = _Steps(progress, 8)
+    steps.start("configuration", "reading the configuration")
+    cfg = _as_config(config, "analyse_period")
+    inputs = _input_files(cfg)
+    hashes = [{"role": role, "name": p.name, "path": str(p), "sha256": file_sha256(p)}
+              for role, p in inputs if p.is_file()]
+    archive = HistoryArchive(cfg.output.archive)
+    rules = FlagRules(min_probability=cfg.flags.min_probability, use_clusters=cfg.flags.use_clusters,
+                      min_observed=cfg.flags.min_observed, threshold=cfg.smoothing.threshold)
+
+    run_warnings: list[str] = []
+    with _recording_warnings(run_warnings):
+        steps.start("intake", "reading boundaries, cases and population")
+        from ..intake import load_study, week_bounds
+
+        study = load_study(cfg)
+        key, window = _resolve_period(study, period, cfg)
+        start_day = week_bounds(window[0])[0]
+        end_day = week_bounds(window[-1])[1]
+        boundaries = study.boundaries
+        ids = boundaries.index
+        names = boundaries["area_name"].astype(str)
+
+        steps.start("graph", f"building the {cfg.graph.method} neighbour graph")
+        from ..graphs import build_graph, read_extra_links
+
+        g = cfg.graph
+        extra = read_extra_links(g.extra_links_file, ids) if g.extra_links_file is not None else None
+        graph = build_graph(boundaries, method=g.method, snap=g.snap, k=g.k, distance=g.distance,
+                            islands=g.islands, island_k=g.island_k, extra_links=extra, name_column="area_name")
+
+        steps.start("rates", "expected counts and standardized ratios")
+        from ..rates import expected_counts, standardized_ratio
+
+        cases = study.case_matrix(weeks=window).reindex(index=ids, fill_value=0)
+        pop = study.population_matrix().reindex(index=ids)
+        rates = _reference_rates(cfg, study)
+        if rates is None:
+            expected = pd.Series(np.asarray(expected_counts(cases, pop), dtype=float), index=ids)
+        else:
+            # external rates are per person per week: the window holds len(window) weeks of exposure
+            expected = pd.Series(np.asarray(expected_counts(cases, pop, reference_rates=rates), dtype=float)
+                                 * len(window), index=ids)
+        observed = pd.Series(cases.sum(axis=1).to_numpy().astype(np.int64), index=ids)
+        population = pd.Series(pop.sum(axis=1).to_numpy(float), index=ids)
+        if not (expected > 0).all():
+            bad = ids[~(expected > 0).to_numpy()]
+            raise InputError(
+                f"{len(bad)} district(s) have an expected count of zero ({format_examples(bad)}), usually because "
+                "their population is zero. Remove them from the boundaries or give them a population."
+            )
+        sr = standardized_ratio(observed, expected).to_frame()
+
+        steps.start("smoothing", f"empirical-Bayes and {cfg.smoothing.model.upper()} smoothing")
+        from ..models import fit_car
+        from ..smoothing import poisson_gamma_eb
+
+        eb = poisson_gamma_eb(observed, expected, threshold=cfg.smoothing.threshold)
+        covariates = None
+        if cfg.smoothing.covariates:
+            covariates = _covariates(boundaries, cfg.smoothing.covariates)
+        car = fit_car(observed, expected, graph, model=cfg.smoothing.model, covariates=covariates,
+                      priors=_priors(cfg), threshold=cfg.smoothing.threshold)
+        car_frame = car.to_frame().reindex(ids)
+
+        steps.start("clusters", f"Moran's I and local clusters ({cfg.clusters.permutations} permutations)")
+        from ..autocorrelation import rate_local_clusters, rate_morans_i
+
+        cl = cfg.clusters
+        moran = rate_morans_i(observed, expected, graph, permutations=cl.permutations, seed=cfg.seed)
+        local_result = rate_local_clusters(observed, expected, graph, statistic=cl.statistic,
+                                           permutations=cl.permutations, seed=cfg.seed, adjust=cl.adjust,
+                                           alpha=cl.alpha)
+        local = local_result.to_frame().reindex(ids)
+
+        steps.start("flags", "flags and comparison with the previous period")
+        table = pd.DataFrame(index=ids)
+        table["area_name"] = names
+        table["period_start"] = start_day.isoformat()
+        table["period_end"] = end_day.isoformat()
+        table["observed"] = observed
+        table["expected"] = expected
+        table["population"] = population
+        table["sir"] = sr["ratio"].to_numpy(float)
+        table["sir_low"] = sr["low"].to_numpy(float)
+        table["sir_high"] = sr["high"].to_numpy(float)
+        table["eb_rr"] = np.asarray(eb.rr_mean, dtype=float)
+        table["rr"] = car_frame["rr_mean"].to_numpy(float)
+        table["rr_low"] = car_frame["rr_low"].to_numpy(float)
+        table["rr_high"] = car_frame["rr_high"].to_numpy(float)
+        table["p_above_1"] = car_frame["p_above_1"].to_numpy(float)
+        threshold_differs = not math.isclose(cfg.smoothing.threshold, 1.0)
+        if threshold_differs:
+            table["p_above_threshold"] = car_frame["p_above_threshold"].to_numpy(float)
+        table["cluster"] = local["cluster"].astype(str).to_numpy()
+        table["cluster_p"] = local["p_adjusted"].to_numpy(float)
+        flags = flag_areas(
+            table.assign(p_exceed=table["p_above_threshold"] if threshold_differs else table["p_above_1"]),
+            rules=rules, adjust=cl.adjust)
+        table["flag"] = flags["flag"].to_numpy(bool)
+        table["flag_reason"] = flags["flag_reason"].to_numpy(object)
+        changes = archive.compare(key, table["flag"])
+        table["flag_change"] = changes.status.to_numpy(object)
+        table["weeks_flagged"] = changes.weeks_flagged.to_numpy(np.int64)
+        table.index.name = "area_id"
+
+        import geopandas as gpd
+
+        areas = gpd.GeoDataFrame(table, geometry=boundaries.geometry.reindex(ids), crs=boundaries.crs)
+    steps.stop()
+
+    counts = changes.counts
+    moran_info = {
+        "statistic": moran.statistic, "expected": moran.expected, "p_value": moran.p_permutation,
+        "p_value_kind": "two-sided permutation pseudo p-value", "permutations": moran.permutations,
+        "z_randomization": moran.z_randomization, "p_randomization": moran.p_randomization,
+        "variable": "Assunção-Reis empirical-Bayes standardized ratios (observed / expected)",
+        "weights": moran.weights,
+    }
+    run_info = {
+        "tool": "areamap", "version": __version__,
+        "run_time": run_time.isoformat(),
+        "period": {"key": key, "weeks": window, "window_weeks": len(window),
+                   "start": start_day.isoformat(), "end": end_day.isoformat()},
+        "seed": cfg.seed,
+        "configuration": _jsonable(cfg),
+        "inputs": hashes,
+        "n_areas": int(len(ids)),
+        "graph": _jsonable(dataclasses.asdict(graph.summary())),
+        "morans_i": moran_info,
+        "local_clusters": {"statistic": cl.statistic, "permutations": cl.permutations, "adjust": cl.adjust,
+                           "alpha": cl.alpha,
+                           "counts": {k_: int(v) for k_, v in table["cluster"].value_counts().items()}},
+        "empirical_bayes": {"prior_mean": eb.prior_mean, "prior_shape": eb.prior_shape},
+        "model": _model_summary(car, cfg),
+        "flags": {"rule": rules.describe(adjust=cl.adjust, alpha=cl.alpha), **counts,
+                  "previous_period": changes.previous_period,
+                  "previous_available": changes.previous_available},
+        "suppress_below": cfg.output.suppress_below,
+        "notes": [*getattr(study, "notes", ()), *(f"Local clusters: {n}" for n in local_result.notes)],
+        "warnings": run_warnings,
+        "timings_seconds": {**steps.timings, "analysis": round(time.perf_counter() - t_start, 3)},
+    }
+    return PeriodAnalysis(
+        config=cfg, period=key, weeks=tuple(window), period_start=start_day, period_end=end_day, areas=areas,
+        graph=graph, morans_i=moran, local_clusters=local_result, empirical_bayes=eb, car_fit=car,
+        changes=changes, rules=rules, inputs=tuple(hashes), run_info=run_info,
+    )
+
+
+
+@contextlib.contextmanager
+def _recording_warnings(store: list[str]):
+    """Keep the text of areamap warnings raised inside (for run.json), then pass every warning on."""
+    caught: list = []
+    try:
+        with warnings.catch_warnings(record=True) as recorded:
+            warnings.simplefilter("always", AreamapWarning)
+            try:
+                yield
+            finally:
+                caught = list(recorded)
+    finally:
+        for w in caught:
+            if issubclass(w.category, AreamapWarning) and str(w.message) not in store:
+                store.append(str(w.message))
+            warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+
+
+def _covariates(boundaries, names) -> pd.DataFrame:
+    missing = [c for c in names if c not in boundaries.columns]
+    if missing:
+        raise InputError(
+            f"[smoothing] covariates names column(s) {format_examples(missing)} that the boundaries file does not "
+            f"have. Available: {format_examples([c for c in boundaries.columns if c != 'geometry'], limit=10)}."
+        )
+    return pd.DataFrame(boundaries[list(names)])
+
+
+def _model_summary(car, cfg) -> dict:
+    hyper = getattr(car, "hyperparameters", None)
+    info = {"model": cfg.smoothing.model}
+    if isinstance(hyper, pd.DataFrame):
+        info["hyperparameters"] = json.loads(hyper.to_json(orient="index"))
+    coef = getattr(car, "coefficients", None)
+    if isinstance(coef, pd.DataFrame) and len(coef):
+        info["coefficients"] = json.loads(coef.to_json(orient="index"))
+    for name in ("dic", "waic", "log_marginal_likelihood", "effective_parameters", "fraction_spatial"):
+        value = getattr(car, name, None)
+        if value is not None:
+            info[name] = _jsonable(value)
+    poorly = getattr(car, "poorly_fitted", None)
+    if poorly is not None:
+        info["poorly_fitted_areas"] = int(np.sum(poorly))
+    info["notes"] = list(getattr(car, "notes", ()))
+    return info
+
+
