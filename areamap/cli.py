@@ -356,7 +356,7 @@ def main(argv: Sequence[str] | None = None) -> int:
             f"internal error: {type(exc).__name__}: {first}\n"
             "This is a bug in areamap; please report it with the command you ran "
             "(set AREAMAP_DEBUG=1 to see the traceback).",
-            file=sys.stderr,
+            err=True,
         )
         return 1
     finally:

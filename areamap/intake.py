@@ -360,7 +360,9 @@ def _parse_numbers(values: pd.Series, *, column: str, name: str, what: str, whol
     if not parts and whole and float(np.sum(x)) > MAX_EXACT_COUNT:
         parts.append(f"a total of {float(np.sum(x)):.3g} {what}, too large to add up exactly")
     if parts:
-        rule = f"whole numbers from 0 to {MAX_EXACT_COUNT:,}" if whole else "numbers >= 0"
+        rule = "whole numbers >= 0" if whole else "numbers >= 0"
+        if huge.any() or "too large" in parts[-1]:
+            rule += f" and at most {MAX_EXACT_COUNT:,} (check for a unit error or a stray exponent such as 1e20)"
         fix = "; write 0 for none, or remove the rows" if missing.any() else ""
         if bad.any() and s[bad].astype(str).str.fullmatch(r"-?\d+,\d+").any():
             fix += "; decimal commas (830,5) must be written with a point (830.5)"
@@ -1263,14 +1265,14 @@ class CheckReport:
             f"({cfg.cases.format}), {s.sources.get('population')}"
         )
         body = s.summary().split("\nNotes:")[0]
+        window = (list(self.plan.window) if self.plan is not None
+                  else s.period_weeks(cfg.period.week, cfg.period.window_weeks))
+        body += (
+            f"\nReporting window: {window[0]}" + (f" to {window[-1]}" if len(window) > 1 else "")
+            + f" ({len(window)} week{'s' if len(window) > 1 else ''}; [period] week = {cfg.period.week!r})"
+        )
         if self.plan is not None:
-            body += "\n" + self.plan.summary()
-        else:
-            window = s.period_weeks(cfg.period.week, cfg.period.window_weeks)
-            body += (
-                f"\nReporting window: {window[0]}" + (f" to {window[-1]}" if len(window) > 1 else "")
-                + f" ({len(window)} week{'s' if len(window) > 1 else ''}; [period] week = {cfg.period.week!r})"
-            )
+            body += f"; {self.plan.window_cases:,} cases in the window"
         g = self.graph.summary()
         graph_line = f"Neighbour graph ({cfg.graph.method}): {g.summary()}"
         lines = head + body.splitlines() + [graph_line]
