@@ -122,7 +122,7 @@ def _cmd_bulletin(args: argparse.Namespace) -> int:
     from .bulletin import run_bulletin
 
     result = run_bulletin(args.config, period=args.period, out=args.out, public=args.public,
-                          progress=_progress_printer(args.quiet))
+                          replace_public=args.replace_public, progress=_progress_printer(args.quiet))
     if not args.quiet:
         _say(result.summary())
     return 0
@@ -231,6 +231,8 @@ def _build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", default=None, help="output folder (default: 'bulletin' beside the configuration)")
     p.add_argument("--public", action="store_true",
                    help="also suppress small counts in areas.csv and areas.gpkg (the HTML always does)")
+    p.add_argument("--replace-public", action="store_true",
+                   help="allow a run without --public to replace a folder written by a --public run")
     p.add_argument("--quiet", action="store_true", help="print nothing on success (for scheduled runs)")
     p.set_defaults(func=_cmd_bulletin)
 
