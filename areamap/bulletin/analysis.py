@@ -68,7 +68,7 @@ AREA_COLUMNS = (
 
 #: Columns withheld (blank) in public tables for areas whose count is suppressed:
 #: with the expected count published, each of them gives the count back exactly.
-_DISCLOSING_COLUMNS = ("sir", "sir_low", "sir_high", "eb_rr")
+# (the list of columns withheld in public outputs lives in disclosure.DISCLOSING_COLUMNS)
 
 _ADJUST_LABEL = {"fdr": "FDR q", "bonferroni": "Bonferroni-adjusted p", "none": "unadjusted p"}
 

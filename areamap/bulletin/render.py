@@ -22,15 +22,20 @@ import pandas as pd
 from ..archive import FlagChanges
 from .analysis import (
     _ADJUST_LABEL,
-    _DISCLOSING_COLUMNS,
     AREA_COLUMNS,
     FlagRules,
     PeriodAnalysis,
     _fmt_p,
     _fmt_prob,
     _jsonable,
-    _suppressed_mask,
-    suppress_counts,
+)
+from .disclosure import (
+    WITHHELD,
+    neutralise_formulas,
+    public_run_info,
+    public_table,
+    short_name,
+    suppressed_mask,
 )
 
 __all__ = ["render_bulletin"]
@@ -62,18 +67,22 @@ def render_bulletin(analysis: PeriodAnalysis, folder: str | Path, *, public: boo
     folder = Path(folder)
     cfg = analysis.config
     info = dict(run_info if run_info is not None else analysis.run_info)
+    if public:
+        info = public_run_info(info)
     info["public"] = public
     timings = info["timings_seconds"] = dict(info.get("timings_seconds", {}))
     t0 = time.perf_counter()
     figures, figure_notes = _figures(analysis.areas, analysis.graph, analysis.local_clusters.to_frame()
-                                     .reindex(analysis.areas.index), cfg, analysis.period)
+                                     .reindex(analysis.areas.index), cfg, analysis.period,
+                                     suppress_below=cfg.output.suppress_below)
     timings["figures"] = round(time.perf_counter() - t0, 4)
     if started is not None:
         timings["total"] = round(time.perf_counter() - started, 3)
     _write_tables(analysis.areas, folder, public=public, suppress_below=cfg.output.suppress_below,
                   threshold_differs=analysis.threshold_differs)
+    # the page always suppresses small counts, so it shows the public (rounded) region-wide statistics
     page = _render_html(cfg, analysis.areas, analysis.changes, analysis.morans_i, analysis.rules, figures,
-                        figure_notes, info, list(analysis.inputs))
+                        figure_notes, info if public else public_run_info(info), list(analysis.inputs))
     (folder / "index.html").write_text(page, encoding="utf-8")
     _write_json(folder / "run.json", info)
     return info
@@ -124,13 +133,12 @@ def _write_tables(areas, folder: Path, *, public: bool, suppress_below: int, thr
     if threshold_differs:
         cols.insert(cols.index("p_above_1") + 1, "p_above_threshold")
     frame = areas[cols + ["geometry"]].copy()
-    if public and suppress_below > 1:
-        hide = _suppressed_mask(frame["observed"], suppress_below)
-        frame["observed"] = suppress_counts(frame["observed"], threshold=suppress_below).to_numpy(object)
-        for c in _DISCLOSING_COLUMNS:
-            frame.loc[hide, c] = np.nan
+    if public:
+        frame = public_table(frame, suppress_below=suppress_below)
     plain = pd.DataFrame(frame.drop(columns="geometry")).reset_index()
     plain["flag"] = plain["flag"].map({True: "true", False: "false"})
+    # text that a spreadsheet would run as a formula is neutralised in the CSV (not in the GeoPackage)
+    plain = neutralise_formulas(plain)
     plain.to_csv(folder / "areas.csv", index=False, float_format="%.10g", encoding="utf-8", lineterminator="\n")
     gdf = frame.reset_index()
     gdf.to_file(folder / "areas.gpkg", layer="areas", driver="GPKG")
@@ -179,12 +187,15 @@ _CAUTIONS = (
 
 
 def _cautions(suppress_below: int) -> tuple[str, ...]:
-    hidden = (f"counts from 1 to {suppress_below - 1} are hidden in this page" if suppress_below > 1
-              else "no counts are hidden (suppression is switched off)")
-    return (*_CAUTIONS,
-            f"Disclosure: {hidden}, but totals, maps and the funnel plot are not adjusted (no complementary "
-            "suppression), so small counts may still be approximately recoverable. Check local rules before "
-            "publishing.")
+    if suppress_below > 1:
+        text = (f"Disclosure: counts from 1 to {suppress_below - 1} are hidden in this page; for those districts "
+                "the ratios, model estimates, expected counts and cluster results are withheld too, the raw-ratio "
+                "map and the funnel plot leave them out, and the totals exclude them, so that a small count "
+                "cannot be recovered by subtraction or by refitting the model. The smoothed-risk maps still show "
+                "their risk class. Check local rules before publishing.")
+    else:
+        text = "Disclosure: no counts are hidden (suppression is switched off). Check local rules before publishing."
+    return (*_CAUTIONS, text)
 
 
 def _moran_sentence(statistic: float, expected: float, p: float) -> str:
@@ -258,13 +269,14 @@ def _row_display(row, suppress_below: int) -> dict:
     return {
         "area_id": str(row.Index), "area_name": str(row.area_name),
         "observed": f"<{suppress_below}" if hide else str(int(row.observed)),
-        "expected": _fmt(row.expected, 1),
-        "sir": "withheld" if hide else _fmt(row.sir),
+        "expected": WITHHELD if hide else _fmt(row.expected, 1),
+        "sir": WITHHELD if hide else _fmt(row.sir),
         "sir_ci": "" if hide else f"({_fmt(row.sir_low)}–{_fmt(row.sir_high)})",
-        "rr": _fmt(row.rr), "rr_ci": f"({_fmt(row.rr_low)}–{_fmt(row.rr_high)})",
-        "p_above_1": _fmt_prob(row.p_above_1).lstrip("=") if np.isfinite(row.p_above_1) else "n/a",
-        "cluster": str(row.cluster), "change": str(row.flag_change),
-        "weeks_flagged": str(int(row.weeks_flagged)), "flag_reason": str(row.flag_reason),
+        "rr": WITHHELD if hide else _fmt(row.rr), "rr_ci": "" if hide else f"({_fmt(row.rr_low)}–{_fmt(row.rr_high)})",
+        "p_above_1": (WITHHELD if hide else
+                      _fmt_prob(row.p_above_1).lstrip("=") if np.isfinite(row.p_above_1) else "n/a"),
+        "cluster": WITHHELD if hide else str(row.cluster), "change": str(row.flag_change),
+        "weeks_flagged": str(int(row.weeks_flagged)), "flag_reason": WITHHELD if hide else str(row.flag_reason),
     }
 
 
@@ -287,8 +299,7 @@ def _render_html(cfg, areas, changes: FlagChanges, moran, rules: FlagRules, figu
             "moran_i": f"{moran.statistic:.3f}", "moran_expected": f"{moran.expected:.3f}",
             "moran_p": _fmt_p(moran.p_permutation), "moran_permutations": moran.permutations,
             "moran_sentence": _moran_sentence(moran.statistic, moran.expected, moran.p_permutation),
-            "total_observed": f"{int(table['observed'].sum()):,}",
-            "total_expected": f"{table['expected'].sum():,.1f}",
+            **_totals(table, sb),
         },
         "flag_rule_text": rules.describe(adjust=cfg.clusters.adjust, alpha=cfg.clusters.alpha),
         "figures": figures, "figure_notes": figure_notes,
@@ -309,20 +320,38 @@ def _render_html(cfg, areas, changes: FlagChanges, moran, rules: FlagRules, figu
     return _environment().get_template("bulletin.html").render(**context)
 
 
+def _totals(table: pd.DataFrame, suppress_below: int) -> dict:
+    """Headline totals without the suppressed districts (a full total minus the shown counts would give
+    the sum of the hidden ones)."""
+    hide = suppressed_mask(table["observed"], suppress_below)
+    shown = table.loc[~hide]
+    note = (f" (not counting the {int(hide.sum())} district(s) with fewer than {suppress_below} cases)"
+            if hide.any() else "")
+    return {"total_observed": f"{int(shown['observed'].sum()):,}",
+            "total_expected": f"{shown['expected'].sum():,.1f}" + note}
+
+
 # ============================================================================ figures
 def _plain(text: str) -> str:
     """User text for matplotlib: '$' would start mathtext, so escape it (text is drawn literally)."""
     return str(text).replace("$", r"\$")
 
 
-def _figures(areas, graph, local, cfg, key: str) -> tuple[list[dict], list[str]]:
-    """The bulletin's figures as PNG data URIs, with titles, captions and alt texts."""
+def _figures(areas, graph, local, cfg, key: str, *, suppress_below: int = 0) -> tuple[list[dict], list[str]]:
+    """The bulletin's figures as PNG data URIs, with titles, captions and alt texts.
+
+    Raw ratios of suppressed districts are left out (their map class and funnel position would give the
+    count back); names are cut to 40 characters (a very long name must not stretch a figure).
+    """
     import matplotlib.pyplot as plt
 
     from .. import maps
 
     gdf = areas.copy()
-    gdf["area_name"] = gdf["area_name"].map(_plain)
+    gdf["area_name"] = gdf["area_name"].map(lambda n: _plain(short_name(n)))
+    hide = suppressed_mask(gdf["observed"], suppress_below)
+    if hide.any():
+        gdf.loc[hide, ["sir", "sir_low", "sir_high"]] = np.nan
     source = _plain(cfg.data_source) if cfg.data_source else None
     period_text = f"{key} ({gdf['period_start'].iloc[0]} to {gdf['period_end'].iloc[0]})"
     out: list[dict] = []
@@ -336,7 +365,8 @@ def _figures(areas, graph, local, cfg, key: str) -> tuple[list[dict], list[str]]
     with warnings.catch_warnings():
         # figure-level notes (e.g. areas left out) are repeated in the captions drawn by the maps
         warnings.simplefilter("ignore", UserWarning)
-        fig = maps.raw_beside_smoothed(gdf, "sir", "rr", period=period_text, source=source)
+        fig = maps.raw_beside_smoothed(gdf, "sir", "rr", period=period_text, source=source,
+                                       missing_label="withheld (small count)" if hide.any() else "no data")
         add("raw-smoothed", fig, "Raw and smoothed ratios",
             "Left: standardized incidence ratio (observed / expected). Right: relative risk smoothed by the "
             f"{cfg.smoothing.model.upper()} model, same classes and colours. Raw ratios of districts with few "
@@ -368,10 +398,13 @@ def _figures(areas, graph, local, cfg, key: str) -> tuple[list[dict], list[str]]
             "Map of local cluster categories per district.")
 
         fig, ax = plt.subplots(figsize=(8.0, 5.5), layout="constrained")
-        maps.funnel_plot(gdf["observed"], gdf["expected"], labels=gdf["area_name"], ax=ax)
+        shown = gdf.loc[~hide]
+        maps.funnel_plot(shown["observed"], shown["expected"], labels=shown["area_name"], ax=ax)
         add("funnel", fig, "Funnel plot",
             "Standardized incidence ratio against expected count with 95% and 99.8% exact Poisson control "
-            "limits around 1. Points outside the funnel vary more than chance alone would usually give.",
+            "limits around 1. Points outside the funnel vary more than chance alone would usually give."
+            + (f" Districts with 1 to {suppress_below - 1} cases are not shown (small-count suppression)."
+               if hide.any() else ""),
             "Scatter plot of standardized ratio against expected count with funnel-shaped control limits.")
     n_islands = int(graph.island_mask().sum())
     if n_islands:

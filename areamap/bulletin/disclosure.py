@@ -1,0 +1,172 @@
+"""Disclosure control of public outputs: what a public file shows for a district with a small count.
+
+The rule (documented in the user guide, "Disclosure rule for public outputs"):
+
+1. A count from 1 to ``suppress_below - 1`` is shown as ``"<suppress_below"``;
+   zero stays 0.
+2. For such a *suppressed district*, every column listed in
+   :data:`DISCLOSING_COLUMNS` -- anything computed from its own count, or
+   from totals that include it -- is withheld: numbers are blank, text reads
+   ``"withheld"``. Only the band of the estimate remains visible (the colour
+   class on the maps and the flag).
+3. Every other district's model outputs are published at
+   :data:`PUBLIC_DECIMALS` precision, so that the small influence of a
+   neighbour's suppressed count on them is rounded away.
+4. Totals are never published with the suppressed counts in them: the public
+   HTML headline gives the total of the shown counts and says how many
+   districts are left out; expected counts of suppressed districts are
+   withheld, so ``sum(expected) - sum(observed)`` cannot be formed; run.json
+   of a public run rounds the region-wide statistics (Moran's I, the
+   empirical-Bayes prior, the CAR hyperparameters) and leaves out the fit
+   criteria (DIC, WAIC, marginal likelihood), which move with every count.
+5. Text cells of public and internal CSV tables that a spreadsheet would run
+   as a formula are neutralised (:func:`neutralise_formulas`).
+
+Other bulletin sections that add per-district columns computed from the
+counts add their names to :data:`DISCLOSING_COLUMNS` (and a precision to
+:data:`PUBLIC_DECIMALS`); the rule is then applied to them everywhere a
+public table is written.
+"""
+
+from __future__ import annotations
+
+import copy
+import math
+
+import numpy as np
+import pandas as pd
+
+__all__ = [
+    "DISCLOSING_COLUMNS",
+    "PUBLIC_DECIMALS",
+    "WITHHELD",
+    "suppressed_mask",
+    "public_table",
+    "public_run_info",
+    "neutralise_formulas",
+    "short_name",
+]
+
+#: Per-district columns withheld for suppressed districts in every public output: each is computed from
+#: the district's own count (or, for ``expected`` under internal standardization, from a total that contains
+#: it) and would give the count back, exactly or by refitting the published model.
+DISCLOSING_COLUMNS = (
+    "expected", "sir", "sir_low", "sir_high", "eb_rr", "rr", "rr_low", "rr_high", "p_above_1",
+    "p_above_threshold", "cluster", "cluster_p", "flag_reason",
+)
+
+#: Decimals of public numeric columns (all districts): coarse enough that a neighbour's suppressed count
+#: does not show in the last digit (see tests/test_disclosure.py for the refit attack on the demo).
+PUBLIC_DECIMALS = {
+    "expected": 1, "population": 0, "sir": 2, "sir_low": 2, "sir_high": 2, "eb_rr": 2, "rr": 2, "rr_low": 2,
+    "rr_high": 2, "p_above_1": 2, "p_above_threshold": 2, "cluster_p": 3,
+}
+
+#: Text shown in place of a withheld text value.
+WITHHELD = "withheld"
+
+#: First characters that make a spreadsheet treat a cell as a formula (OWASP "CSV injection"; common practice).
+_FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
+
+
+def suppressed_mask(observed, suppress_below: int) -> np.ndarray:
+    """True where a count is suppressed (1 to ``suppress_below - 1``)."""
+    values = np.asarray(observed, dtype=float)
+    return (values >= 1) & (values < suppress_below) if suppress_below > 1 else np.zeros(len(values), bool)
+
+
+def public_table(frame: pd.DataFrame, *, suppress_below: int) -> pd.DataFrame:
+    """The public version of a per-district table (observed as text, disclosing columns withheld, rounded).
+
+    Parameters
+    ----------
+    frame : pandas.DataFrame
+        Unsuppressed per-district table with an ``observed`` column (other
+        columns, e.g. geometry, pass through).
+    suppress_below : int
+        Counts from 1 to ``suppress_below - 1`` are suppressed (0 or 1: none).
+
+    Returns
+    -------
+    pandas.DataFrame
+        A copy, same index and columns.
+
+    Examples
+    --------
+    >>> t = pd.DataFrame({"observed": [0, 3, 12], "rr": [0.81234, 1.3, 1.55555], "cluster": ["a", "b", "c"]})
+    >>> p = public_table(t, suppress_below=5)
+    >>> p["observed"].tolist(), p["rr"].tolist(), p["cluster"].tolist()
+    (['0', '<5', '12'], [0.81, nan, 1.56], ['a', 'withheld', 'c'])
+    """
+    from .analysis import suppress_counts
+
+    out = frame.copy()
+    hide = suppressed_mask(out["observed"], suppress_below)
+    for c, digits in PUBLIC_DECIMALS.items():
+        if c in out.columns:
+            out[c] = np.round(out[c].to_numpy(float), digits)
+    for c in DISCLOSING_COLUMNS:
+        if c not in out.columns or not hide.any():
+            continue
+        if pd.api.types.is_numeric_dtype(out[c]) and not pd.api.types.is_bool_dtype(out[c]):
+            out[c] = out[c].astype(float)
+            out.loc[hide, c] = np.nan
+        else:
+            out[c] = out[c].astype(object)
+            out.loc[hide, c] = WITHHELD
+    if suppress_below > 1:
+        out["observed"] = suppress_counts(out["observed"], threshold=suppress_below).to_numpy(object)
+    return out
+
+
+def _round_floats(obj, digits: int):
+    if isinstance(obj, dict):
+        return {k: _round_floats(v, digits) for k, v in obj.items()}
+    if isinstance(obj, list | tuple):
+        return [_round_floats(v, digits) for v in obj]
+    if isinstance(obj, float) and math.isfinite(obj):
+        return round(obj, digits)
+    return obj
+
+
+def public_run_info(info: dict) -> dict:
+    """run.json of a public run: region-wide statistics rounded, fit criteria left out."""
+    out = copy.deepcopy(info)
+    if isinstance(out.get("morans_i"), dict):
+        out["morans_i"] = _round_floats(out["morans_i"], 3)
+    if isinstance(out.get("empirical_bayes"), dict):
+        out["empirical_bayes"] = _round_floats(out["empirical_bayes"], 2)
+    model = out.get("model")
+    if isinstance(model, dict):
+        for k in ("dic", "waic", "log_marginal_likelihood", "effective_parameters"):
+            model.pop(k, None)
+        for k in ("hyperparameters", "coefficients", "fraction_spatial"):
+            if k in model:
+                model[k] = _round_floats(model[k], 2)
+    out["disclosure"] = ("public: counts below suppress_below shown as '<suppress_below'; their districts' "
+                         "model outputs and expected counts withheld; other outputs rounded; fit criteria left out")
+    return out
+
+
+def neutralise_formulas(frame: pd.DataFrame) -> pd.DataFrame:
+    """Prefix text cells that a spreadsheet would evaluate (``=``, ``+``, ``-``, ``@``...) with a single quote.
+
+    Common practice against formula injection in CSV files (OWASP): the quote makes a spreadsheet show the
+    text instead of running it. Numbers are never changed; only object (text) columns are.
+
+    Examples
+    --------
+    >>> neutralise_formulas(pd.DataFrame({"name": ["=HYPERLINK(1)", "Ashby", "-2+3"]}))["name"].tolist()
+    ["'=HYPERLINK(1)", 'Ashby', "'-2+3"]
+    """
+    out = frame.copy()
+    for c in out.columns:
+        if out[c].dtype == object:
+            out[c] = out[c].map(lambda v: "'" + v if isinstance(v, str) and v.startswith(_FORMULA_START) else v)
+    return out
+
+
+def short_name(name: object, limit: int = 40) -> str:
+    """A name cut to ``limit`` characters for figures and terminal lines (tables keep the full name)."""
+    text = "" if name is None else str(name)
+    return text if len(text) <= limit else text[: limit - 1] + "…"
