@@ -521,7 +521,23 @@ def read_boundaries(
     geoms = _check_geometries(geoms, index, name)
     out = gpd.GeoDataFrame(data, geometry=geoms, index=index, crs=gdf.crs)
     out.index.name = "area_id"
+    _check_degrees(out, name)
     return out
+
+
+def _check_degrees(gdf, name: str) -> None:
+    """Refuse coordinates far outside longitude/latitude ranges under a geographic (degree) CRS."""
+    crs = gdf.crs
+    if crs is None or not crs.is_geographic:
+        return
+    x0, y0, x1, y1 = gdf.total_bounds
+    if not (np.isfinite([x0, y0, x1, y1]).all() and -360 <= x0 and x1 <= 360 and -90 <= y0 and y1 <= 90):
+        raise InputError(
+            f"The boundaries file {name} says its coordinates are degrees ({crs.name}), but they span "
+            f"x {x0:.6g} to {x1:.6g} and y {y0:.6g} to {y1:.6g}, outside longitude/latitude ranges: they are "
+            "probably projected coordinates (metres) with a wrong CRS label. Set the file's real CRS (for a "
+            "shapefile, its .prj file) and export it again."
+        )
 
 
 def _default_layer(path: Path) -> str | None:
