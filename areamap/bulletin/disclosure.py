@@ -9,9 +9,10 @@ The rule (documented in the user guide, "Disclosure rule for public outputs"):
    from totals that include it -- is withheld: numbers are blank, text reads
    ``"withheld"``. Only the band of the estimate remains visible (the colour
    class on the maps and the flag).
-3. Every other district's model outputs are published at
-   :data:`PUBLIC_DECIMALS` precision, so that the small influence of a
-   neighbour's suppressed count on them is rounded away.
+3. Every other district's ratios and probabilities are published to one
+   decimal (:data:`PUBLIC_DECIMALS`), so that the small influence of a
+   neighbour's suppressed count on them is rounded away (at two decimals
+   the refit attack on the demo still picked the right count above chance).
 4. Totals are never published with the suppressed counts in them: the public
    HTML headline gives the total of the shown counts and says how many
    districts are left out; expected counts of suppressed districts are
@@ -58,8 +59,8 @@ DISCLOSING_COLUMNS = (
 #: Decimals of public numeric columns (all districts): coarse enough that a neighbour's suppressed count
 #: does not show in the last digit (see tests/test_disclosure.py for the refit attack on the demo).
 PUBLIC_DECIMALS = {
-    "expected": 1, "population": 0, "sir": 2, "sir_low": 2, "sir_high": 2, "eb_rr": 2, "rr": 2, "rr_low": 2,
-    "rr_high": 2, "p_above_1": 2, "p_above_threshold": 2, "cluster_p": 3,
+    "expected": 1, "population": 0, "sir": 1, "sir_low": 1, "sir_high": 1, "eb_rr": 1, "rr": 1, "rr_low": 1,
+    "rr_high": 1, "p_above_1": 1, "p_above_threshold": 1, "cluster_p": 2,
 }
 
 #: Text shown in place of a withheld text value.
@@ -96,7 +97,7 @@ def public_table(frame: pd.DataFrame, *, suppress_below: int) -> pd.DataFrame:
     >>> t = pd.DataFrame({"observed": [0, 3, 12], "rr": [0.81234, 1.3, 1.55555], "cluster": ["a", "b", "c"]})
     >>> p = public_table(t, suppress_below=5)
     >>> p["observed"].tolist(), p["rr"].tolist(), p["cluster"].tolist()
-    (['0', '<5', '12'], [0.81, nan, 1.56], ['a', 'withheld', 'c'])
+    (['0', '<5', '12'], [0.8, nan, 1.6], ['a', 'withheld', 'c'])
     """
     from .analysis import suppress_counts
 
@@ -161,7 +162,7 @@ def neutralise_formulas(frame: pd.DataFrame) -> pd.DataFrame:
     """
     out = frame.copy()
     for c in out.columns:
-        if out[c].dtype == object:
+        if out[c].dtype == object or pd.api.types.is_string_dtype(out[c]):
             out[c] = out[c].map(lambda v: "'" + v if isinstance(v, str) and v.startswith(_FORMULA_START) else v)
     return out
 
