@@ -21,6 +21,7 @@ from areamap.bulletin.disclosure import (
     DISCLOSING_COLUMNS,
     WITHHELD,
     neutralise_formulas,
+    public_analysis,
     public_run_info,
     public_table,
     suppressed_mask,
@@ -99,7 +100,7 @@ def test_public_outputs_hold_no_subtractable_total(demo_analysis, tmp_path):
     assert hide.sum() > 10  # the demo has many suppressed districts
     # the identity that made the subtraction possible (indirect standardization, internal reference)
     np.testing.assert_allclose(areas["expected"].sum(), areas["observed"].sum(), rtol=1e-9)  # float sums
-    render_bulletin(an, tmp_path, public=True)
+    render_bulletin(public_analysis(an), tmp_path, public=True)
     table = pd.read_csv(tmp_path / "areas.csv", dtype={"observed": str})
     assert table.loc[hide, "expected"].isna().all()
     shown = table.loc[~hide]
@@ -121,10 +122,11 @@ def test_refit_attack_recovers_no_more_than_guessing(demo_analysis):
     """Refit the published model once per possible count of a suppressed district and pick the count whose
     outputs match the published ones best (the attack of the hostile review, which recovered 86 of 88 counts).
 
-    The attacker is given more than a real reader has: the exact expected counts of every district. Other
-    suppressed districts are guessed at the most common small count. Without the rule (the district's own
-    smoothed RR and P(RR>1) published at full precision) the attack recovers most counts; with the rule it
-    must do no better than always guessing the most common value (binomial upper 99% bound; common practice).
+    The attacker is given far more than a real reader has: the exact expected counts and every other count,
+    suppressed or not (the worst case). Without the rule (the district's own smoothed RR and P(RR>1) published
+    at full precision, as before) the attack recovers the counts; with the rule the public estimates do not
+    depend on the suppressed counts, so every candidate fits equally well and the attacker can do no better
+    than always guessing the most common value (binomial upper 99% bound; common practice).
     """
     an = demo_analysis
     cfg, sb = an.config, an.config.output.suppress_below
@@ -134,7 +136,7 @@ def test_refit_attack_recovers_no_more_than_guessing(demo_analysis):
     values = np.arange(1, sb)
     freq = np.array([(truth[hide] == v).sum() for v in values]) / hide.sum()
     mode = int(values[np.argmax(freq)])
-    pub = public_table(areas, suppress_below=sb)
+    pub = public_table(public_analysis(an).to_frame(), suppress_below=sb)
     shown = ~hide
     pub_rr, pub_p = pub["rr"].to_numpy(float), pub["p_above_1"].to_numpy(float)
     rng = np.random.default_rng(20261202)

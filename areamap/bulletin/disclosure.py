@@ -171,3 +171,122 @@ def short_name(name: object, limit: int = 40) -> str:
     """A name cut to ``limit`` characters for figures and terminal lines (tables keep the full name)."""
     text = "" if name is None else str(name)
     return text if len(text) <= limit else text[: limit - 1] + "…"
+
+
+# --------------------------------------------------------------------------- the public analysis
+def _strip_numbers(reason: object) -> str:
+    """A flag reason without the exact probabilities and p-values (they come from the full data)."""
+    import re
+
+    text = "" if reason is None else str(reason)
+    text = re.sub(r"(P\(RR>[^)]*\))(?:[=<>]+[0-9.]+)", r"\1", text)
+    return re.sub(r"\(([^()=]+)=[<>]?[0-9.]+\)", r"(\1)", text)
+
+
+def public_analysis(analysis, *, today=None):
+    """The analysis as published by a public run: every number computed without the suppressed counts.
+
+    Rounding alone cannot protect a suppressed count from a reader who knows (or guesses well) every other
+    count: a refit shows which value reproduces the rounded outputs. So a public run publishes estimates
+    that do not depend on the suppressed counts at all:
+
+    * expected counts from reference rates of the districts whose counts are shown (internal
+      standardization; external rates do not depend on the counts);
+    * each suppressed count replaced by its public expected count, rounded and kept within 1 to
+      ``suppress_below - 1`` (a neutral value: it carries no information about the real count);
+    * ratios, empirical-Bayes and CAR estimates, Moran's I and local clusters recomputed from these
+      public counts (same model, priors, permutations and seed).
+
+    Flags, new/continuing/resolved and periods flagged stay those of the full analysis (the official
+    flags, also in the archive); a flag is a band, not a count. Flag reasons lose their exact numbers.
+
+    Parameters
+    ----------
+    analysis : PeriodAnalysis
+    today : datetime.date, optional
+        Passed to the input checks when the study is read again.
+
+    Returns
+    -------
+    PeriodAnalysis
+        A copy whose per-district table, Moran's I, local clusters, empirical-Bayes and CAR fits and
+        run_info are the public ones (``observed`` keeps the real counts; rendering suppresses them).
+    """
+    import dataclasses
+
+    from ..autocorrelation import rate_local_clusters, rate_morans_i
+    from ..models import fit_car
+    from ..rates import standardized_ratio
+    from ..smoothing import poisson_gamma_eb
+    from ..validation import prepare_run
+    from .analysis import _covariates, _jsonable, _model_summary, _priors
+
+    cfg = analysis.config
+    sb = cfg.output.suppress_below
+    areas = analysis.areas
+    ids = areas.index
+    hide = suppressed_mask(areas["observed"], sb)
+    if not hide.any():
+        return analysis
+    prepared = prepare_run(cfg, period=analysis.period, today=today)
+    study = prepared.study
+    pop = study.population_matrix().reindex(index=ids)
+    if cfg.standardization.reference == "internal":
+        cases = study.case_matrix(weeks=list(analysis.weeks)).reindex(index=ids, fill_value=0)
+        shown_cases = cases.loc[~hide].sum(axis=0).to_numpy(float)
+        shown_pop = pop.loc[~hide].sum(axis=0).to_numpy(float)
+        rates = np.divide(shown_cases, shown_pop, out=np.zeros_like(shown_cases), where=shown_pop > 0)
+        expected = pop.to_numpy(float) @ rates
+    else:
+        expected = areas["expected"].to_numpy(float)
+    if not (expected > 0).all():  # a district whose age groups have no shown cases: fall back to the crude rate
+        crude = areas.loc[~hide, "observed"].sum() / pop.loc[~hide].to_numpy(float).sum()
+        expected = np.where(expected > 0, expected, pop.to_numpy(float).sum(axis=1) * crude)
+    observed = areas["observed"].to_numpy(np.int64).copy()
+    observed[hide] = np.clip(np.rint(expected[hide]), 1, sb - 1).astype(np.int64)
+    obs = pd.Series(observed, index=ids)
+    exp = pd.Series(expected, index=ids)
+    threshold = cfg.smoothing.threshold
+    sr = standardized_ratio(obs, exp).to_frame()
+    eb = poisson_gamma_eb(obs, exp, threshold=threshold)
+    covariates = _covariates(study.boundaries, cfg.smoothing.covariates) if cfg.smoothing.covariates else None
+    car = fit_car(obs, exp, analysis.graph, model=cfg.smoothing.model, covariates=covariates, priors=_priors(cfg),
+                  threshold=threshold)
+    car_frame = car.to_frame().reindex(ids)
+    cl = cfg.clusters
+    moran = rate_morans_i(obs, exp, analysis.graph, permutations=cl.permutations, seed=cfg.seed)
+    local = rate_local_clusters(obs, exp, analysis.graph, statistic=cl.statistic, permutations=cl.permutations,
+                                seed=cfg.seed, adjust=cl.adjust, alpha=cl.alpha)
+    local_frame = local.to_frame().reindex(ids)
+
+    table = areas.copy()
+    table["expected"] = expected
+    table["sir"] = sr["ratio"].to_numpy(float)
+    table["sir_low"] = sr["low"].to_numpy(float)
+    table["sir_high"] = sr["high"].to_numpy(float)
+    table["eb_rr"] = np.asarray(eb.rr_mean, dtype=float)
+    table["rr"] = car_frame["rr_mean"].to_numpy(float)
+    table["rr_low"] = car_frame["rr_low"].to_numpy(float)
+    table["rr_high"] = car_frame["rr_high"].to_numpy(float)
+    table["p_above_1"] = car_frame["p_above_1"].to_numpy(float)
+    if "p_above_threshold" in table.columns:
+        table["p_above_threshold"] = car_frame["p_above_threshold"].to_numpy(float)
+    table["cluster"] = local_frame["cluster"].astype(str).to_numpy()
+    table["cluster_p"] = local_frame["p_adjusted"].to_numpy(float)
+    table["flag_reason"] = table["flag_reason"].map(_strip_numbers)
+
+    info = copy.deepcopy(analysis.run_info)
+    info["morans_i"] = {**info.get("morans_i", {}), "statistic": moran.statistic, "expected": moran.expected,
+                        "p_value": moran.p_permutation, "z_randomization": moran.z_randomization,
+                        "p_randomization": moran.p_randomization}
+    info["local_clusters"] = {**info.get("local_clusters", {}),
+                              "counts": {k: int(v) for k, v in table["cluster"].value_counts().items()}}
+    info["empirical_bayes"] = {"prior_mean": eb.prior_mean, "prior_shape": eb.prior_shape}
+    info["model"] = _model_summary(car, cfg)
+    # a file hash would let a reader test each possible value of a hidden count against the cases file
+    info["inputs"] = [{"role": h.get("role"), "name": h.get("name"), "sha256": "withheld in public outputs"}
+                      for h in info.get("inputs", [])]
+    info = _jsonable(public_run_info(info))
+    return dataclasses.replace(
+        analysis, areas=table, morans_i=moran, local_clusters=local, empirical_bayes=eb, car_fit=car,
+        inputs=tuple(info["inputs"]), run_info=info)

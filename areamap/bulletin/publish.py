@@ -7,8 +7,11 @@ folder, then the period written to the archive in one transaction while the
 folder is moved into place. A run that fails at any step leaves the previous
 bulletin folder, the archive and the inputs untouched.
 
-Disclosure caution: complementary suppression is not done; totals or
-neighbouring tables may still allow a small count to be back-calculated.
+With ``public=True`` the files are rendered from
+:func:`~areamap.bulletin.disclosure.public_analysis` (estimates computed
+without the suppressed counts) and the disclosure rule of
+:mod:`~areamap.bulletin.disclosure` applies; the archive always keeps the full
+analysis.
 """
 
 from __future__ import annotations
@@ -31,6 +34,7 @@ from ..errors import ParameterError
 from . import _folder
 from ._folder import MARKER_NAME, OUTPUT_FILES
 from .analysis import Progress, _as_config, _input_files, _Steps, analyse_period
+from .disclosure import public_analysis
 from .render import render_bulletin
 
 __all__ = ["OUTPUT_FILES", "MARKER_NAME", "BulletinResult", "run_bulletin"]
@@ -121,7 +125,7 @@ class BulletinResult:
 
 # ============================================================================ publishing
 def _publish(analysis, out_dir: Path, *, public: bool, replace_public: bool, started: float,
-             steps: _Steps, inputs: list) -> tuple[dict, list[str]]:
+             steps: _Steps, inputs: list, today=None) -> tuple[dict, list[str]]:
     """Render into a temporary sibling, stage in the archive, swap the folder in, promote, verify, clean up.
 
     The folder and the archive change together or not at all: see :mod:`areamap.bulletin._folder` and
@@ -145,7 +149,9 @@ def _publish(analysis, out_dir: Path, *, public: bool, replace_public: bool, sta
             os.chmod(tmp, mode if mode is not None else 0o777 & ~_umask())
             _folder.write_marker(tmp, {"run_id": run_id, "period": analysis.period, "public": public,
                                        "version": __version__})
-            run_info = render_bulletin(analysis, tmp, public=public, started=started)
+            # a public run publishes estimates computed without the suppressed counts (disclosure rule)
+            shown = public_analysis(analysis, today=today) if public else analysis
+            run_info = render_bulletin(shown, tmp, public=public, started=started)
 
             steps.start("archive", "archiving the period and publishing")
             table = analysis.to_frame()
@@ -279,7 +285,7 @@ def run_bulletin(
     steps.start("outputs", "writing index.html, areas.csv, areas.gpkg, run.json")
     _parent_for(out_dir)
     run_info, recovered = _publish(analysis, out_dir, public=public, replace_public=replace_public,
-                                   started=t_start, steps=steps, inputs=inputs)
+                                   started=t_start, steps=steps, inputs=inputs, today=today)
     steps.stop()
     run_info["timings_seconds"]["archive"] = steps.timings.get("archive")
     run_info["publishing_notes"] = [*out_notes, *recovered]
