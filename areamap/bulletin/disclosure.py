@@ -46,6 +46,7 @@ __all__ = [
     "public_run_info",
     "neutralise_formulas",
     "short_name",
+    "public_analysis",
 ]
 
 #: Per-district columns withheld for suppressed districts in every public output: each is computed from
