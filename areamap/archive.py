@@ -86,19 +86,22 @@ ARCHIVE_COLUMNS: dict[str, str] = {
     "weeks_flagged": "INTEGER",
 }
 
+# Per-period fields after the period key (shared by the history and the staging table).
+_PERIOD_FIELDS = """period_start TEXT NOT NULL,
+    period_end TEXT NOT NULL,
+    window_weeks INTEGER NOT NULL,
+    written_at TEXT NOT NULL,
+    tool_version TEXT,
+    n_areas INTEGER NOT NULL,
+    n_flagged INTEGER NOT NULL"""
+
 _SCHEMA = f"""
 CREATE TABLE IF NOT EXISTS schema_version (
     version INTEGER NOT NULL
 );
 CREATE TABLE IF NOT EXISTS periods (
     period TEXT PRIMARY KEY,
-    period_start TEXT NOT NULL,
-    period_end TEXT NOT NULL,
-    window_weeks INTEGER NOT NULL,
-    written_at TEXT NOT NULL,
-    tool_version TEXT,
-    n_areas INTEGER NOT NULL,
-    n_flagged INTEGER NOT NULL
+    {_PERIOD_FIELDS}
 );
 CREATE TABLE IF NOT EXISTS area_results (
     period TEXT NOT NULL REFERENCES periods(period) ON DELETE CASCADE,
@@ -114,13 +117,7 @@ _PENDING_SCHEMA = f"""
 CREATE TABLE IF NOT EXISTS pending_periods (
     run_id TEXT PRIMARY KEY,
     period TEXT NOT NULL,
-    period_start TEXT NOT NULL,
-    period_end TEXT NOT NULL,
-    window_weeks INTEGER NOT NULL,
-    written_at TEXT NOT NULL,
-    tool_version TEXT,
-    n_areas INTEGER NOT NULL,
-    n_flagged INTEGER NOT NULL,
+    {_PERIOD_FIELDS},
     out_dir TEXT
 );
 CREATE TABLE IF NOT EXISTS pending_area_results (

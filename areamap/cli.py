@@ -125,6 +125,9 @@ def _cmd_bulletin(args: argparse.Namespace) -> int:
                           replace_public=args.replace_public, progress=_progress_printer(args.quiet))
     if not args.quiet:
         _say(result.summary())
+    else:
+        for note in result.notes:  # what publishing repaired is always reported
+            _say(f"note: {note}", err=True)
     return 0
 
 

@@ -595,19 +595,8 @@ def analyse_period(
         table["observed"] = observed
         table["expected"] = expected
         table["population"] = population
-        table["sir"] = sr["ratio"].to_numpy(float)
-        table["sir_low"] = sr["low"].to_numpy(float)
-        table["sir_high"] = sr["high"].to_numpy(float)
-        table["eb_rr"] = np.asarray(eb.rr_mean, dtype=float)
-        table["rr"] = car_frame["rr_mean"].to_numpy(float)
-        table["rr_low"] = car_frame["rr_low"].to_numpy(float)
-        table["rr_high"] = car_frame["rr_high"].to_numpy(float)
-        table["p_above_1"] = car_frame["p_above_1"].to_numpy(float)
         threshold_differs = not math.isclose(cfg.smoothing.threshold, 1.0)
-        if threshold_differs:
-            table["p_above_threshold"] = car_frame["p_above_threshold"].to_numpy(float)
-        table["cluster"] = local["cluster"].astype(str).to_numpy()
-        table["cluster_p"] = local["p_adjusted"].to_numpy(float)
+        _set_estimates(table, sr, eb, car_frame, local, threshold_differs=threshold_differs)
         flags = flag_areas(
             table.assign(p_exceed=table["p_above_threshold"] if threshold_differs else table["p_above_1"]),
             rules=rules, adjust=cl.adjust)
@@ -679,6 +668,22 @@ def _recording_warnings(store: list[str]):
             if issubclass(w.category, AreamapWarning) and str(w.message) not in store:
                 store.append(str(w.message))
             warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+
+
+def _set_estimates(table: pd.DataFrame, sr, eb, car_frame, local, *, threshold_differs: bool) -> None:
+    """Fill the ratio, smoothing and cluster columns of a per-area table (in place), in AREA_COLUMNS order."""
+    table["sir"] = sr["ratio"].to_numpy(float)
+    table["sir_low"] = sr["low"].to_numpy(float)
+    table["sir_high"] = sr["high"].to_numpy(float)
+    table["eb_rr"] = np.asarray(eb.rr_mean, dtype=float)
+    table["rr"] = car_frame["rr_mean"].to_numpy(float)
+    table["rr_low"] = car_frame["rr_low"].to_numpy(float)
+    table["rr_high"] = car_frame["rr_high"].to_numpy(float)
+    table["p_above_1"] = car_frame["p_above_1"].to_numpy(float)
+    if threshold_differs:
+        table["p_above_threshold"] = car_frame["p_above_threshold"].to_numpy(float)
+    table["cluster"] = local["cluster"].astype(str).to_numpy()
+    table["cluster_p"] = local["p_adjusted"].to_numpy(float)
 
 
 def _covariates(boundaries, names) -> pd.DataFrame:

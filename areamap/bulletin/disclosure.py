@@ -220,7 +220,7 @@ def public_analysis(analysis, *, today=None):
     from ..rates import standardized_ratio
     from ..smoothing import poisson_gamma_eb
     from ..validation import prepare_run
-    from .analysis import _covariates, _jsonable, _model_summary, _priors
+    from .analysis import _covariates, _jsonable, _model_summary, _priors, _set_estimates
 
     cfg = analysis.config
     sb = cfg.output.suppress_below
@@ -262,18 +262,7 @@ def public_analysis(analysis, *, today=None):
 
     table = areas.copy()
     table["expected"] = expected
-    table["sir"] = sr["ratio"].to_numpy(float)
-    table["sir_low"] = sr["low"].to_numpy(float)
-    table["sir_high"] = sr["high"].to_numpy(float)
-    table["eb_rr"] = np.asarray(eb.rr_mean, dtype=float)
-    table["rr"] = car_frame["rr_mean"].to_numpy(float)
-    table["rr_low"] = car_frame["rr_low"].to_numpy(float)
-    table["rr_high"] = car_frame["rr_high"].to_numpy(float)
-    table["p_above_1"] = car_frame["p_above_1"].to_numpy(float)
-    if "p_above_threshold" in table.columns:
-        table["p_above_threshold"] = car_frame["p_above_threshold"].to_numpy(float)
-    table["cluster"] = local_frame["cluster"].astype(str).to_numpy()
-    table["cluster_p"] = local_frame["p_adjusted"].to_numpy(float)
+    _set_estimates(table, sr, eb, car_frame, local_frame, threshold_differs="p_above_threshold" in table.columns)
     table["flag_reason"] = table["flag_reason"].map(_strip_numbers)
 
     info = copy.deepcopy(analysis.run_info)
