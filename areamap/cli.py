@@ -49,7 +49,7 @@ _CONTROL = re.compile("[\x00-\x08\x0b-\x1f\x7f-\x9f\u200e\u200f\u202a-\u202e\u20
 
 
 def visible(text: object) -> str:
-    """User text made safe for a terminal: control characters shown as escapes (``'\\x1b'``).
+    r"""User text made safe for a terminal: control characters shown as escapes (``'\x1b'``).
 
     Examples
     --------
