@@ -177,7 +177,11 @@ def swap_in(new: Path, out: Path, previous: Path) -> bool:
         os.rename(new, out)
         return False
     if _renameat2_exchange(new, out):
-        os.rename(new, previous)  # `new` now holds the old folder
+        try:
+            os.rename(new, previous)  # `new` now holds the old folder
+        except OSError:
+            _renameat2_exchange(new, out)  # put the old folder back before the caller removes `new`
+            raise
         return True
     os.rename(out, previous)
     try:
