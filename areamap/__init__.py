@@ -46,6 +46,21 @@ from .errors import (
     ParameterError,
     SmallNumbersWarning,
 )
+from .geostatistics import (
+    AreaPoints,
+    PoissonKrigingResult,
+    RiskSurface,
+    RiskVariogram,
+    SmootherValidation,
+    VariogramModel,
+    cross_validate_smoothers,
+    discretize_areas,
+    ordinary_kriging,
+    poisson_kriging,
+    risk_surface_map,
+    risk_variogram,
+    variogram_plot,
+)
 from .graphs import AreaGraph, GraphSummary, build_graph, read_extra_links, write_edge_list
 from .intake import (
     CheckReport,
@@ -136,6 +151,10 @@ __all__ = [
     "funnel_plot", "moran_scatterplot", "shrinkage_plot", "ranked_interval_plot", "add_map_furniture",
     # CAR models
     "CarPriors", "CarFit", "fit_car",
+    # geostatistical smoothing (risk semivariogram, Poisson kriging)
+    "VariogramModel", "RiskVariogram", "risk_variogram", "AreaPoints", "discretize_areas", "PoissonKrigingResult",
+    "RiskSurface", "poisson_kriging", "ordinary_kriging", "variogram_plot", "risk_surface_map",
+    "SmootherValidation", "cross_validate_smoothers",
     # bulletin and history
     "analyse_period", "PeriodAnalysis", "render_bulletin", "run_bulletin", "BulletinResult", "FlagRules",
     "flag_areas", "suppress_counts", "file_sha256",

@@ -244,6 +244,14 @@ class SmoothingConfig:
     threshold: float = _key(
         1.0, "float", "Relative risk whose exceedance probability P(RR > threshold) is reported.", low=0.0, closed="neither"
     )
+    kriging: bool = _key(
+        False, "bool", "Also estimate relative risks by area-to-area Poisson kriging (risk semivariogram fitted to the "
+        "window's counts) and show them beside the CAR estimates: columns kriged_rr, kriged_rr_low, kriged_rr_high "
+        "and a map. Flags still come from the CAR model."
+    )
+    kriging_neighbours: int = _key(
+        32, "int", "Nearest districts in each local kriging system, besides the district itself.", low=1
+    )
     priors: PriorsConfig = field(default_factory=PriorsConfig, metadata={"kind": "section"})
 
 

@@ -5,11 +5,13 @@ from __future__ import annotations
 import hashlib
 import json
 import shutil
+import warnings
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 import pytest
+from numpy.testing import assert_allclose
 
 from areamap.bulletin import AREA_COLUMNS, FlagRules, file_sha256, flag_areas, suppress_counts
 from areamap.bulletin._folder import MARKER_NAME, check_replaceable, swap_in, write_marker
@@ -557,3 +559,44 @@ def test_analyse_period_writes_nothing_and_reproduces_the_bulletin(demo_run):
     assert mine["cluster"].tolist() == published["cluster"].tolist()
     assert mine["flag"].tolist() == published["flag"].astype(str).str.lower().eq("true").tolist()
     assert "Analysis of 2026-W47" in analysis.summary()
+
+
+@pytest.mark.slow
+def test_kriged_risks_beside_car_estimates(tmp_path):
+    """[smoothing] kriging = true adds kriged columns, a two-map figure and the semivariogram; flags unchanged."""
+    from areamap.bulletin import KRIGING_COLUMNS, analyse_period, run_bulletin
+    from areamap.demo import write_demo
+
+    config = write_demo(tmp_path / "demo")
+    text = config.read_text(encoding="utf-8")
+    config.write_text(text.replace('threshold = 1.0\n', 'threshold = 1.0\nkriging = true\nkriging_neighbours = 16\n',
+                                   1).replace("permutations = 9999", "permutations = 199"), encoding="utf-8")
+    out = tmp_path / "bulletin"
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        run_bulletin(config, out=out)
+        analysis = analyse_period(config)
+    table = pd.read_csv(out / "areas.csv", dtype={"area_id": str})
+    cols = list(AREA_COLUMNS)
+    at = cols.index("p_above_1") + 1
+    assert list(table.columns) == cols[:at] + list(KRIGING_COLUMNS) + cols[at:]
+    run = json.loads((out / "run.json").read_text(encoding="utf-8"))
+    page = (out / "index.html").read_text(encoding="utf-8")
+    if analysis.kriging is None:  # the demo's counts showed no structure: said so, columns blank
+        assert "skipped" in run["kriging"] and table["kriged_rr"].isna().all()
+        return
+    # the columns are the kriging result on the SIR scale (rate per expected case)
+    assert_allclose(table["kriged_rr"], analysis.kriging.rate, rtol=1e-9)  # written with 10 significant digits
+    assert (table["kriged_rr_low"] <= table["kriged_rr"]).all() and (table["kriged_rr"] <= table["kriged_rr_high"]).all()
+    assert run["kriging"]["neighbours"] == 17  # 16 nearest plus the district itself
+    assert 'id="fig-kriging"' in page or "Two smoothers side by side" in page
+    assert "Poisson kriging" in page and "Kyriakidis" in page
+    # flags come from the CAR model only: identical to an analysis without kriging
+    plain = config.parent / "plain.toml"
+    plain.write_text(config.read_text(encoding="utf-8").replace("kriging = true", "kriging = false"),
+                     encoding="utf-8")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        without = analyse_period(plain)
+    assert table["flag"].tolist() == without.areas["flag"].tolist()
+    assert "kriged_rr" not in without.areas.columns and without.kriging is None

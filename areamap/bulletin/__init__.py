@@ -8,6 +8,7 @@
 
 from .analysis import (
     AREA_COLUMNS,
+    KRIGING_COLUMNS,
     FlagRules,
     PeriodAnalysis,
     analyse_period,
@@ -20,6 +21,7 @@ from .render import render_bulletin
 
 __all__ = [
     "AREA_COLUMNS",
+    "KRIGING_COLUMNS",
     "OUTPUT_FILES",
     "BulletinResult",
     "FlagRules",

@@ -51,6 +51,7 @@ from ..errors import AreamapWarning, InputError, ParameterError, format_examples
 
 __all__ = [
     "AREA_COLUMNS",
+    "KRIGING_COLUMNS",
     "FlagRules",
     "PeriodAnalysis",
     "analyse_period",
@@ -64,6 +65,9 @@ AREA_COLUMNS = (
     "sir", "sir_low", "sir_high", "eb_rr", "rr", "rr_low", "rr_high", "p_above_1",
     "cluster", "cluster_p", "flag", "flag_reason", "flag_change", "weeks_flagged",
 )
+
+#: Columns added to the area table when ``[smoothing] kriging`` is on (after p_above_1 / p_above_threshold).
+KRIGING_COLUMNS = ("kriged_rr", "kriged_rr_low", "kriged_rr_high")
 
 
 #: Columns withheld (blank) in public tables for areas whose count is suppressed:
@@ -354,6 +358,9 @@ class PeriodAnalysis:
         Role, name, path and SHA-256 of each input file.
     run_info : dict
         The provenance record (run.json without the output step's timings).
+    kriging : PoissonKrigingResult or None
+        Area-to-area Poisson kriging of the window's counts when ``[smoothing] kriging``
+        is on (None when off, or when the risk semivariogram showed nothing to model).
     """
 
     config: object
@@ -371,6 +378,7 @@ class PeriodAnalysis:
     rules: FlagRules = field(repr=False)
     inputs: tuple = field(repr=False)
     run_info: dict = field(repr=False)
+    kriging: object = field(default=None, repr=False)
 
     @property
     def window_weeks(self) -> int:
@@ -576,6 +584,7 @@ def analyse_period(
         car = fit_car(observed, expected, graph, model=cfg.smoothing.model, covariates=covariates,
                       priors=_priors(cfg), threshold=cfg.smoothing.threshold)
         car_frame = car.to_frame().reindex(ids)
+        kriging, kriging_info = _kriging(cfg, observed, expected, boundaries)
 
         steps.start("clusters", f"Moran's I and local clusters ({cfg.clusters.permutations} permutations)")
         from ..autocorrelation import rate_local_clusters, rate_morans_i
@@ -597,6 +606,9 @@ def analyse_period(
         table["population"] = population
         threshold_differs = not math.isclose(cfg.smoothing.threshold, 1.0)
         _set_estimates(table, sr, eb, car_frame, local, threshold_differs=threshold_differs)
+        if cfg.smoothing.kriging:
+            for col, values in _kriged_columns(kriging, len(ids)).items():
+                table[col] = values
         flags = flag_areas(
             table.assign(p_exceed=table["p_above_threshold"] if threshold_differs else table["p_above_1"]),
             rules=rules, adjust=cl.adjust)
@@ -636,6 +648,7 @@ def analyse_period(
                            "counts": {k_: int(v) for k_, v in table["cluster"].value_counts().items()}},
         "empirical_bayes": {"prior_mean": eb.prior_mean, "prior_shape": eb.prior_shape},
         "model": _model_summary(car, cfg),
+        **({"kriging": kriging_info} if cfg.smoothing.kriging else {}),
         "flags": {"rule": rules.describe(adjust=cl.adjust, alpha=cl.alpha), **counts,
                   "previous_period": changes.previous_period,
                   "previous_available": changes.previous_available},
@@ -647,8 +660,39 @@ def analyse_period(
     return PeriodAnalysis(
         config=cfg, period=key, weeks=tuple(window), period_start=start_day, period_end=end_day, areas=areas,
         graph=graph, morans_i=moran, local_clusters=local_result, empirical_bayes=eb, car_fit=car,
-        changes=changes, rules=rules, inputs=tuple(hashes), run_info=run_info,
+        changes=changes, rules=rules, inputs=tuple(hashes), run_info=run_info, kriging=kriging,
     )
+
+
+
+def _kriging(cfg, observed, expected, boundaries):
+    """Poisson kriging of the window's counts with expected counts as the denominators (or None, info)."""
+    if not cfg.smoothing.kriging:
+        return None, {}
+    from ..errors import ModelError, ModelWarning
+    from ..geostatistics import poisson_kriging, risk_variogram
+
+    try:
+        variogram = risk_variogram(observed, expected, boundaries)
+        result = poisson_kriging(observed, expected, boundaries, variogram=variogram,
+                                 neighbours=cfg.smoothing.kriging_neighbours, per=1.0)
+    except ModelError as exc:
+        warnings.warn(f"Poisson kriging skipped: {exc}", ModelWarning, stacklevel=2)
+        return None, {"skipped": str(exc)}
+    m = result.model
+    return result, {
+        "variogram_model": m.model, "nugget": m.nugget, "partial_sill": m.partial_sill, "range": m.range,
+        "spatial_structure": bool(variogram.spatial_structure), "neighbours": result.neighbours,
+        "areas_with_negative_weights": int((result.negative_weight_count > 0).sum()),
+        "leave_one_out": dict(result.cv), "notes": [*variogram.notes, *result.notes],
+    }
+
+
+def _kriged_columns(result, n: int) -> dict:
+    """Kriged relative risks on the SIR scale (rate per expected case) and their approximate 95% interval."""
+    if result is None:
+        return {c: np.full(n, np.nan) for c in KRIGING_COLUMNS}
+    return {"kriged_rr": result.rate, "kriged_rr_low": result.rate_low, "kriged_rr_high": result.rate_high}
 
 
 

@@ -54,14 +54,15 @@ __all__ = [
 #: it) and would give the count back, exactly or by refitting the published model.
 DISCLOSING_COLUMNS = (
     "expected", "sir", "sir_low", "sir_high", "eb_rr", "rr", "rr_low", "rr_high", "p_above_1",
-    "p_above_threshold", "cluster", "cluster_p", "flag_reason",
+    "p_above_threshold", "kriged_rr", "kriged_rr_low", "kriged_rr_high", "cluster", "cluster_p", "flag_reason",
 )
 
 #: Decimals of public numeric columns (all districts): coarse enough that a neighbour's suppressed count
 #: does not show in the last digit (see tests/test_disclosure.py for the refit attack on the demo).
 PUBLIC_DECIMALS = {
     "expected": 1, "population": 0, "sir": 1, "sir_low": 1, "sir_high": 1, "eb_rr": 1, "rr": 1, "rr_low": 1,
-    "rr_high": 1, "p_above_1": 1, "p_above_threshold": 1, "cluster_p": 2,
+    "rr_high": 1, "p_above_1": 1, "p_above_threshold": 1, "kriged_rr": 1, "kriged_rr_low": 1,
+    "kriged_rr_high": 1, "cluster_p": 2,
 }
 
 #: Text shown in place of a withheld text value.
@@ -145,6 +146,8 @@ def public_run_info(info: dict) -> dict:
         for k in ("hyperparameters", "coefficients", "fraction_spatial"):
             if k in model:
                 model[k] = _round_floats(model[k], 2)
+    if isinstance(out.get("kriging"), dict):
+        out["kriging"] = _round_floats(out["kriging"], 2)
     out["disclosure"] = ("public: counts below suppress_below shown as '<suppress_below'; their districts' "
                          "model outputs and expected counts withheld; other outputs rounded; fit criteria left out")
     return out
@@ -220,7 +223,7 @@ def public_analysis(analysis, *, today=None):
     from ..rates import standardized_ratio
     from ..smoothing import poisson_gamma_eb
     from ..validation import prepare_run
-    from .analysis import _covariates, _jsonable, _model_summary, _priors, _set_estimates
+    from .analysis import _covariates, _jsonable, _kriged_columns, _kriging, _model_summary, _priors, _set_estimates
 
     cfg = analysis.config
     sb = cfg.output.suppress_below
@@ -264,6 +267,11 @@ def public_analysis(analysis, *, today=None):
     table["expected"] = expected
     _set_estimates(table, sr, eb, car_frame, local_frame, threshold_differs="p_above_threshold" in table.columns)
     table["flag_reason"] = table["flag_reason"].map(_strip_numbers)
+    kriging = getattr(analysis, "kriging", None)
+    if cfg.smoothing.kriging:
+        kriging, kriging_info = _kriging(cfg, obs, exp, study.boundaries.reindex(ids))
+        for col, values in _kriged_columns(kriging, len(ids)).items():
+            table[col] = values
 
     info = copy.deepcopy(analysis.run_info)
     info["morans_i"] = {**info.get("morans_i", {}), "statistic": moran.statistic, "expected": moran.expected,
@@ -273,10 +281,12 @@ def public_analysis(analysis, *, today=None):
                               "counts": {k: int(v) for k, v in table["cluster"].value_counts().items()}}
     info["empirical_bayes"] = {"prior_mean": eb.prior_mean, "prior_shape": eb.prior_shape}
     info["model"] = _model_summary(car, cfg)
+    if cfg.smoothing.kriging:
+        info["kriging"] = kriging_info
     # a file hash would let a reader test each possible value of a hidden count against the cases file
     info["inputs"] = [{"role": h.get("role"), "name": h.get("name"), "sha256": "withheld in public outputs"}
                       for h in info.get("inputs", [])]
     info = _jsonable(public_run_info(info))
     return dataclasses.replace(
         analysis, areas=table, morans_i=moran, local_clusters=local, empirical_bayes=eb, car_fit=car,
-        inputs=tuple(info["inputs"]), run_info=info)
+        inputs=tuple(info["inputs"]), run_info=info, **({"kriging": kriging} if hasattr(analysis, "kriging") else {}))

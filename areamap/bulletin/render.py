@@ -23,6 +23,7 @@ from ..archive import FlagChanges
 from .analysis import (
     _ADJUST_LABEL,
     AREA_COLUMNS,
+    KRIGING_COLUMNS,
     FlagRules,
     PeriodAnalysis,
     _fmt_p,
@@ -74,7 +75,7 @@ def render_bulletin(analysis: PeriodAnalysis, folder: str | Path, *, public: boo
     t0 = time.perf_counter()
     figures, figure_notes = _figures(analysis.areas, analysis.graph, analysis.local_clusters.to_frame()
                                      .reindex(analysis.areas.index), cfg, analysis.period,
-                                     suppress_below=cfg.output.suppress_below)
+                                     kriging=analysis.kriging, suppress_below=cfg.output.suppress_below)
     timings["figures"] = round(time.perf_counter() - t0, 4)
     if started is not None:
         timings["total"] = round(time.perf_counter() - started, 3)
@@ -132,6 +133,9 @@ def _write_tables(areas, folder: Path, *, public: bool, suppress_below: int, thr
     cols = [c for c in AREA_COLUMNS if c != "area_id"]
     if threshold_differs:
         cols.insert(cols.index("p_above_1") + 1, "p_above_threshold")
+    if all(c in areas.columns for c in KRIGING_COLUMNS):
+        at = cols.index("p_above_threshold" if threshold_differs else "p_above_1") + 1
+        cols[at:at] = list(KRIGING_COLUMNS)
     frame = areas[cols + ["geometry"]].copy()
     if public:
         frame = public_table(frame, suppress_below=suppress_below)
@@ -168,6 +172,17 @@ _REFERENCES = (
     "that accounts for scaling. Statistical Methods in Medical Research 25(4):1145–1165.",
     "Spiegelhalter DJ (2005). Funnel plots for comparing institutional performance. Statistics in Medicine "
     "24(8):1185–1202.",
+)
+
+_KRIGING_REFERENCES = (
+    "Goovaerts P (2006). Geostatistical analysis of disease data: accounting for spatial support and population "
+    "density in the isopleth mapping of cancer mortality risk using area-to-point Poisson kriging. "
+    "International Journal of Health Geographics 5:52.",
+    "Kyriakidis PC (2004). A geostatistical framework for area-to-point spatial interpolation. Geographical "
+    "Analysis 36(3):259–289.",
+    "Monestiez P, Dubroca L, Bonnin E, Durbec JP, Guinet C (2006). Geostatistical modelling of spatial "
+    "distribution of Balaenoptera physalus in the Northwestern Mediterranean Sea from sparse count data and "
+    "heterogeneous observation efforts. Ecological Modelling 193:615–628.",
 )
 
 _CAUTIONS = (
@@ -245,6 +260,14 @@ def _methods(cfg, rules: FlagRules, n_window: int) -> list[str]:
         "cut-off follows Richardson et al. (2004). Each flagged district's reason lists the rules it met; "
         "'new', 'continuing' and 'resolved' compare with the previous week in the history archive, and "
         "'periods flagged' counts consecutive flagged weeks.",
+        *([] if not cfg.smoothing.kriging else [
+            "Kriged relative risks (kriged_rr) come from area-to-area Poisson kriging (Kyriakidis 2004; Goovaerts "
+            "2006): a population-weighted semivariogram of the ratios, corrected for Poisson noise (Monestiez et "
+            "al. 2006), is fitted by least squares; each district's estimate is a weighted mean of its own ratio "
+            f"and those of its {cfg.smoothing.kriging_neighbours} nearest districts, with covariances averaged "
+            "over points inside the districts and the Poisson variance of each ratio added to its own term. "
+            "Intervals are approximate (normal, from the kriging variance). They are shown beside, not instead "
+            "of, the model-based estimates."]),
         "The funnel plot (Spiegelhalter 2005) shows each district's SIR against its expected count with "
         "95% and 99.8% control limits around 1; points outside the funnel are more extreme than chance "
         "variation would usually give.",
@@ -307,7 +330,7 @@ def _render_html(cfg, areas, changes: FlagChanges, moran, rules: FlagRules, figu
         "resolved_rows": [{"area_id": str(i), "area_name": str(n)} for i, n in resolved["area_name"].items()],
         "suppress_below": sb,
         "methods": [*_methods(cfg, rules, run_info["period"]["window_weeks"]), _model_sentence(run_info["model"])],
-        "references": _REFERENCES,
+        "references": _REFERENCES + (_KRIGING_REFERENCES if cfg.smoothing.kriging else ()),
         "cautions": _cautions(sb),
         "provenance": {
             "version": run_info["version"], "run_time": run_info["run_time"].replace("+00:00", " UTC"),
@@ -337,7 +360,37 @@ def _plain(text: str) -> str:
     return str(text).replace("$", r"\$")
 
 
-def _figures(areas, graph, local, cfg, key: str, *, suppress_below: int = 0) -> tuple[list[dict], list[str]]:
+def _kriging_figures(add, gdf, kriging, cfg, period_text: str, source) -> None:
+    """CAR and Poisson-kriged relative risks side by side, and the risk semivariogram."""
+    import matplotlib.pyplot as plt
+
+    from .. import maps
+    from ..geostatistics import RiskVariogram, variogram_plot
+
+    car = cfg.smoothing.model.upper()
+    fig = maps.raw_beside_smoothed(gdf, "rr", "kriged_rr", titles=(f"{car} relative risk",
+                                                                   "Poisson-kriged relative risk"),
+                                   period=period_text, source=source)
+    add("kriging", fig, "Two smoothers side by side",
+        f"Left: relative risk smoothed by the {car} model (neighbours from the graph). Right: relative risk "
+        "from area-to-area Poisson kriging (weights from distance, district shape and population through the "
+        "risk semivariogram), same classes and colours. Where the two maps disagree, the smoothed picture "
+        "depends on the choice of method and neighbours; read such districts with extra care. Flags use the "
+        f"{car} estimates only.",
+        f"Two maps side by side: {car} relative risks and Poisson-kriged relative risks per district.")
+    if isinstance(kriging.variogram, RiskVariogram):
+        fig, ax = plt.subplots(figsize=(7.0, 4.5), layout="constrained")
+        variogram_plot(kriging.variogram, ax=ax)
+        add("semivariogram", fig, "Risk semivariogram",
+            "How different the risks of two districts are, by the distance between them, after removing the "
+            "variation that Poisson chance alone would give (dots sized by number of pairs), with the fitted "
+            f"{kriging.model.model} model used for kriging. A curve that rises and levels off means nearby "
+            "districts share risk; a flat curve means kriging has little to borrow.",
+            "Scatter of semivariance against distance with a fitted curve.")
+
+
+def _figures(areas, graph, local, cfg, key: str, *, kriging=None,
+             suppress_below: int = 0) -> tuple[list[dict], list[str]]:
     """The bulletin's figures as PNG data URIs, with titles, captions and alt texts.
 
     Raw ratios of suppressed districts are left out (their map class and funnel position would give the
@@ -372,6 +425,9 @@ def _figures(areas, graph, local, cfg, key: str, *, suppress_below: int = 0) -> 
             f"{cfg.smoothing.model.upper()} model, same classes and colours. Raw ratios of districts with few "
             "expected cases swing widely; the smoothed map borrows strength from neighbours and the region.",
             "Two maps side by side: raw standardized incidence ratios and smoothed relative risks per district.")
+
+        if kriging is not None:
+            _kriging_figures(add, gdf, kriging, cfg, period_text, source)
 
         fig, ax = plt.subplots(figsize=(7.5, 6.5), layout="constrained")
         maps.exceedance_map(gdf, "p_above_1", threshold=1.0, ax=ax, period=period_text, source=source)
