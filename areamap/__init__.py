@@ -30,6 +30,7 @@ from .bulletin import (
     suppress_counts,
 )
 from .bulletin.disclosure import DISCLOSING_COLUMNS, public_analysis, public_table
+from .bulletin.wording import load_wording
 from .config import RunConfig, load_config
 from .demo import write_demo
 from .errors import (
@@ -78,9 +79,12 @@ from .intake import (
     week_range,
     weeks_ending,
 )
+from .explore import explorable_map
+from .figures import locator_map, weekly_curve
 from .maps import (
     CAUTION_TEXT,
     CLUSTER_COLOURS,
+    CLUSTER_STYLE,
     Classification,
     add_map_furniture,
     bivariate_map,
@@ -149,6 +153,7 @@ __all__ = [
     "CAUTION_TEXT", "CLUSTER_COLOURS", "Classification", "classify", "natural_breaks", "relative_risk_breaks",
     "choropleth", "raw_beside_smoothed", "bivariate_map", "exceedance_map", "cluster_map", "funnel_limits",
     "funnel_plot", "moran_scatterplot", "shrinkage_plot", "ranked_interval_plot", "add_map_furniture",
+    "CLUSTER_STYLE", "locator_map", "weekly_curve", "explorable_map",
     # CAR models
     "CarPriors", "CarFit", "fit_car",
     # geostatistical smoothing (risk semivariogram, Poisson kriging)
@@ -157,7 +162,7 @@ __all__ = [
     "SmootherValidation", "cross_validate_smoothers",
     # bulletin and history
     "analyse_period", "PeriodAnalysis", "render_bulletin", "run_bulletin", "BulletinResult", "FlagRules",
-    "flag_areas", "suppress_counts", "file_sha256",
+    "flag_areas", "suppress_counts", "file_sha256", "load_wording",
     "DISCLOSING_COLUMNS", "public_analysis", "public_table",
     "HistoryArchive", "FlagChanges",
 ]

@@ -611,26 +611,39 @@ def bivariate_colours() -> np.ndarray:
     """The 3 × 3 colours of :func:`bivariate_map`, shape (3, 3, 4) RGBA.
 
     Row ``r`` is the relative-risk class (0 low, 1 near the threshold, 2 high),
-    column ``c`` the exceedance-probability class (0 low, 1 inconclusive, 2
-    high). Hue shows the direction of the estimate (blue below, grey near,
-    orange above); darkness and strength of colour grow with the evidence for
-    that direction: with the exceedance probability in the high and middle
-    rows, with one minus it in the low row (a low estimate with P(RR > c)
-    below 0.2 is the most certain low), so pale always means "uncertain".
-    Designed in CIELAB.
+    column ``c`` the exceedance-probability class (0: P(RR > c) below the lower
+    band, good evidence of lowered risk; 1: inconclusive; 2: above the upper
+    band, good evidence of raised risk).
+
+    Notes
+    -----
+    Designed in CIELAB for this package. Certainty comes first: the whole
+    inconclusive column is pale (L* 91 to 96, a faint tint of the estimate's
+    direction), whatever the size of the estimate, so a map where most
+    districts are uncertain looks mostly pale. In the two certain columns the
+    hue is the direction of the evidence (burnt orange raised, deep blue
+    lowered; the ends of the diverging palette) and darkness grows with the
+    size of the estimate in that direction: a large, certain excess is the
+    darkest orange (L* 42), a certain but small one (risk class near 1) is a
+    middle orange (L* 62), and the rare contradictory cell (low estimate with
+    good evidence of raised risk) a light greyish orange (L* 76). Every certain
+    cell is darker than every uncertain one.
 
     Examples
     --------
     >>> bivariate_colours().shape
     (3, 3, 4)
     """
-    lightness = np.array([88.0, 68.0, 46.0])
-    chroma = np.array([24.0, 42.0, 56.0])
-    hues = np.array([_DIVERGING_LAB[0, 1:], [0.0, 0.0], _DIVERGING_LAB[2, 1:]])
-    norms = np.linalg.norm(hues, axis=1, keepdims=True)
-    dirs = np.divide(hues, norms, out=np.zeros_like(hues), where=norms > 0)
-    # evidence level per cell: the low row reads the probability columns backwards
-    level = np.array([[2 - c if r == 0 else c for c in range(3)] for r in range(3)])
-    lab = np.array([[[lightness[level[r, c]], *(chroma[level[r, c]] * dirs[r])] for c in range(3)] for r in range(3)])
+    raised = _DIVERGING_LAB[2, 1:] / np.linalg.norm(_DIVERGING_LAB[2, 1:])
+    lowered = _DIVERGING_LAB[0, 1:] / np.linalg.norm(_DIVERGING_LAB[0, 1:])
+    # (L*, chroma) by size of the estimate in the evidence's direction: opposite, near 1, along
+    certain = np.array([[76.0, 12.0], [62.0, 32.0], [42.0, 56.0]])
+    lab = np.zeros((3, 3, 3))
+    for r in range(3):
+        # column 0: evidence of lowered risk, so a low estimate (row 0) is "along"
+        lab[r, 0] = [certain[2 - r, 0], *(certain[2 - r, 1] * lowered)]
+        lab[r, 2] = [certain[r, 0], *(certain[r, 1] * raised)]
+        tint = (lowered, np.zeros(2), raised)[r]
+        lab[r, 1] = [(91.0, 96.0, 91.0)[r], *(18.0 * tint)]
     rgb = _lab_to_rgb(lab.reshape(9, 3)).reshape(3, 3, 3)
     return np.concatenate([rgb, np.ones((3, 3, 1))], axis=2)

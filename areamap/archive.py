@@ -43,6 +43,7 @@ recompute the periods written after it; re-run those too when that matters.
 from __future__ import annotations
 
 import datetime as _dt
+import json
 import sqlite3
 from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
@@ -118,7 +119,9 @@ CREATE TABLE IF NOT EXISTS pending_periods (
     run_id TEXT PRIMARY KEY,
     period TEXT NOT NULL,
     {_PERIOD_FIELDS},
-    out_dir TEXT
+    out_dir TEXT,
+    settings TEXT,
+    series TEXT
 );
 CREATE TABLE IF NOT EXISTS pending_area_results (
     run_id TEXT NOT NULL REFERENCES pending_periods(run_id) ON DELETE CASCADE,
@@ -127,6 +130,16 @@ CREATE TABLE IF NOT EXISTS pending_area_results (
     {", ".join(f"{c} {t}" for c, t in ARCHIVE_COLUMNS.items())},
     PRIMARY KEY (run_id, area_id)
 );
+"""
+
+# Added without a schema bump: created on demand, absent from archives written before it (their periods
+# then carry only window_weeks, which the periods table always had).
+_SETTINGS_SCHEMA = """
+CREATE TABLE IF NOT EXISTS period_settings (
+    period TEXT PRIMARY KEY,
+    series TEXT NOT NULL,
+    settings TEXT NOT NULL
+)
 """
 
 
@@ -338,6 +351,8 @@ class HistoryArchive:
         window_weeks: int = 1,
         tool_version: str | None = None,
         before_commit: Callable[[], None] | None = None,
+        settings: dict | None = None,
+        series: str = "",
     ) -> None:
         """Store (or replace) one period's per-area results in a single transaction.
 
@@ -356,6 +371,11 @@ class HistoryArchive:
             Length of the analysed window in weeks.
         tool_version : str, optional
             Version of areamap that produced the results (provenance).
+        settings : dict, optional
+            The settings the period was analysed with (window, model, flag
+            rule; JSON-serialisable), checked by :meth:`check_settings`.
+        series : str, default=""
+            Name of the series the period belongs to (recorded with the settings).
         before_commit : callable, optional
             Called with no arguments while the write lock is held, just before
             COMMIT (the bulletin moves its output folder into place here, so
@@ -373,6 +393,8 @@ class HistoryArchive:
         with self._transaction() as con:
             self._ensure_schema(con)
             self._replace_period(con, staged)
+            _store_settings(con, staged["key"], None if settings is None else json.dumps(settings, sort_keys=True),
+                            series)
             if before_commit is not None:
                 before_commit()
 
@@ -388,6 +410,8 @@ class HistoryArchive:
         period_end: str | _dt.date | None = None,
         window_weeks: int = 1,
         tool_version: str | None = None,
+        settings: dict | None = None,
+        series: str = "",
     ) -> None:
         """Phase 1 of publishing: store a period as *pending* (invisible to readers) under ``run_id``.
 
@@ -406,10 +430,11 @@ class HistoryArchive:
             self._ensure_schema(con)
             con.execute("DELETE FROM pending_periods WHERE run_id = ?", (run_id,))
             con.execute(
-                "INSERT INTO pending_periods VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                "INSERT INTO pending_periods VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
                 (run_id, staged["key"], staged["start"], staged["end"], staged["window_weeks"],
                  staged["written_at"], staged["tool_version"], staged["n"], staged["flagged"],
-                 None if out_dir is None else str(out_dir)),
+                 None if out_dir is None else str(out_dir),
+                 None if settings is None else json.dumps(settings, sort_keys=True), str(series)),
             )
             con.executemany(insert, [(run_id, *row) for row in staged["rows"]])
 
@@ -429,10 +454,13 @@ class HistoryArchive:
         with self._transaction() as con:
             self._ensure_schema(con)
             row = con.execute("SELECT period, period_start, period_end, window_weeks, written_at, tool_version, "
-                              "n_areas, n_flagged FROM pending_periods WHERE run_id = ?", (run_id,)).fetchone()
+                              "n_areas, n_flagged, settings, series FROM pending_periods WHERE run_id = ?",
+                              (run_id,)).fetchone()
             if row is None:
                 raise ArchiveError(f"No staged period for run {run_id} in the history archive {self.path}.")
-            key = row[0]
+            key, settings_json, series = row[0], row[8], row[9]
+            row = row[:8]
+            _store_settings(con, key, settings_json, series or "")
             cols = ", ".join(["period", "area_id", *ARCHIVE_COLUMNS])
             con.execute("DELETE FROM area_results WHERE period = ?", (key,))
             con.execute("DELETE FROM periods WHERE period = ?", (key,))
@@ -563,6 +591,59 @@ class HistoryArchive:
              staged["tool_version"], staged["n"], staged["flagged"]),
         )
         con.executemany(insert, staged["rows"])
+
+    # ---------------------------------------------------------------- settings
+    def settings(self, period: str) -> dict | None:
+        """The settings recorded for ``period`` (window_weeks always; the rest when recorded), or None."""
+        key = _week_key(period)
+        with self._reading() as con:
+            if con is None or not _has_tables(con):
+                return None
+            row = con.execute("SELECT window_weeks FROM periods WHERE period = ?", (key,)).fetchone()
+            if row is None:
+                return None
+            out = {"window_weeks": int(row[0])}
+            has = con.execute("SELECT 1 FROM sqlite_master WHERE type = 'table' AND name = 'period_settings'")
+            if has.fetchone():
+                rec = con.execute("SELECT settings FROM period_settings WHERE period = ?", (key,)).fetchone()
+                if rec is not None:
+                    out.update(json.loads(rec[0]))
+        return out
+
+    def check_settings(self, period: str, settings: dict, *, series: str = "") -> None:
+        """Stop when the archive's previous period was analysed with other settings.
+
+        Compares ``settings`` with those recorded for the latest archived
+        period before ``period`` (keys missing from either side are not
+        compared, so archives written before settings were recorded are
+        checked on the window only).
+
+        Raises
+        ------
+        ArchiveError
+            Naming each differing setting (archive vs this run) and the ways on:
+            a new named series (``[output] series``), the archive's settings, or
+            another archive file.
+        """
+        key = _week_key(period)
+        earlier = [p for p in self.periods() if p < key]
+        if not earlier:
+            return
+        prev = earlier[-1]
+        old = self.settings(prev) or {}
+        diffs = _setting_diffs(old, settings)
+        if not diffs:
+            return
+        name = f"w{settings.get('window_weeks', 'x')}-{(settings.get('model') or {}).get('model', 'model')}"
+        here = f" (series '{series}')" if series else ""
+        raise ArchiveError(
+            f"The history archive {self.path}{here} holds {prev}, analysed with other settings: "
+            + "; ".join(f"{k}: {a} in the archive, {b} in this run" for k, a, b in diffs)
+            + ". Comparing flags across different settings ('new', 'resolved', weeks in a row) would compare "
+            f"unlike things. To go on, either start a new series: set [output] series = \"{name}\" (it keeps its "
+            "own history file beside the archive); or run with the archive's settings; or point [output] "
+            "archive to a new file."
+        )
 
     # ------------------------------------------------------------------- read
     def periods(self) -> list[str]:
@@ -706,6 +787,26 @@ class HistoryArchive:
 
 
 # ----------------------------------------------------------------------------- helpers
+def _store_settings(con: sqlite3.Connection, key: str, settings_json: str | None, series: str) -> None:
+    """Record (or clear) the settings a period was analysed with, inside the caller's transaction."""
+    con.execute(_SETTINGS_SCHEMA)
+    con.execute("DELETE FROM period_settings WHERE period = ?", (key,))
+    if settings_json is not None:
+        con.execute("INSERT INTO period_settings VALUES (?, ?, ?)", (key, str(series), settings_json))
+
+
+def _setting_diffs(old: dict, new: dict, prefix: str = "") -> list[tuple[str, object, object]]:
+    """(dotted key, archive value, run value) for every setting present in both and different."""
+    out = []
+    for k in sorted(set(old) & set(new)):
+        a, b = old[k], new[k]
+        if isinstance(a, dict) and isinstance(b, dict):
+            out.extend(_setting_diffs(a, b, f"{prefix}{k}."))
+        elif (list(a) if isinstance(a, tuple) else a) != (list(b) if isinstance(b, tuple) else b):
+            out.append((f"{prefix}{k}", a, b))
+    return out
+
+
 def _has_tables(con: sqlite3.Connection) -> bool:
     return con.execute(
         "SELECT 1 FROM sqlite_master WHERE type='table' AND name='area_results'").fetchone() is not None

@@ -138,12 +138,15 @@ def _cmd_history(args: argparse.Namespace) -> int:
     from .errors import ArchiveError
 
     config = load_config(args.config)
-    archive = HistoryArchive(config.output.archive)
+    archive = HistoryArchive(config.output.archive_path)
     if not archive.path.exists():
         raise ArchiveError(
             f"No history archive at {archive.path} yet. Run 'areamap bulletin {args.config}' first."
         )
     table = archive.history(area=args.area, last=args.last)
+    if not table.empty:
+        windows = {p: (archive.settings(p) or {}).get("window_weeks") for p in table["period"].unique()}
+        table.insert(1, "window_weeks", table["period"].map(windows))
     _say(_history_text(table, area=args.area, last=args.last))
     return 0
 
@@ -154,7 +157,7 @@ def _history_text(table, *, area, last: int) -> str:
     head = f"History ({who}, last {last} archived period(s)):"
     if table.empty:
         return head + "\n(no flagged districts in these periods)"
-    cols = ["period", "area_id", "area_name", "observed", "expected", "rr", "p_above_1", "cluster",
+    cols = ["period", "window_weeks", "area_id", "area_name", "observed", "expected", "rr", "p_above_1", "cluster",
             "flag", "flag_change", "weeks_flagged"]
     shown = table[[c for c in cols if c in table.columns]].copy()
     for c, digits in (("expected", 1), ("rr", 2), ("p_above_1", 2)):
@@ -231,7 +234,9 @@ def _build_parser() -> argparse.ArgumentParser:
     p.add_argument("config", help="path to the run configuration (TOML), e.g. run.toml")
     p.add_argument("--period", default=None,
                    help="ISO week ending the analysed window, e.g. 2026-W47, or 'latest' (default: [period] week)")
-    p.add_argument("--out", default=None, help="output folder (default: 'bulletin' beside the configuration)")
+    p.add_argument("--out", default=None,
+                   help="output folder (default: 'bulletin' beside the configuration); each period goes into its own "
+                        "subfolder (OUT/2026-W47/) and OUT/latest.html points to the newest")
     p.add_argument("--public", action="store_true",
                    help="also suppress small counts in areas.csv and areas.gpkg (the HTML always does)")
     p.add_argument("--replace-public", action="store_true",

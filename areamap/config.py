@@ -278,6 +278,34 @@ class OutputConfig:
         "history.sqlite", "path", "History archive of weekly results (SQLite), relative to the configuration file.",
         must_exist=False,
     )
+    series: str = _key(
+        "", "name",
+        "Name of a series of periods analysed with the same settings; a named series keeps its own history "
+        "file beside the archive (history.NAME.sqlite). Start one when the window, model or flag rule changes.",
+    )
+    per_period: bool = _key(
+        True, "bool",
+        "Write each period into its own folder (bulletin/2026-W47/) and keep bulletin/latest.html pointing to "
+        "the newest; false writes straight into the output folder.",
+    )
+    audience: str = _key(
+        "specialist", "choice",
+        "'specialist': statistical notation (P(RR>1), CrI, FDR q); 'public': plain words, exact figures kept "
+        "in the tables.",
+        choices=("specialist", "public"),
+    )
+    date_format: str = _key(
+        "%Y-%m-%d", "date_format", "strftime format of the dates shown in the bulletin (ISO 8601 by default).",
+    )
+    strings_file: Path | None = _key(
+        None, "opt_path", "TOML file replacing texts of the bulletin's string catalogue (e.g. a translation).",
+    )
+
+    @property
+    def archive_path(self) -> Path:
+        """The history file of the configured series (``archive`` itself when no series is named)."""
+        a = Path(self.archive)
+        return a if not self.series else a.with_name(f"{a.stem}.{self.series}{a.suffix}")
 
 
 @dataclass(frozen=True)
@@ -388,6 +416,8 @@ class RunConfig:
 _KIND_TEXT = {
     "week": "'latest' or an ISO week like '2026-W47'",
     "encoding": "a text encoding name such as 'utf-8' or 'latin-1'",
+    "name": "empty or a short name of letters, digits, '-' and '_' (at most 40, starting with a letter or digit)",
+    "date_format": "a strftime format with at least one % directive, such as '%Y-%m-%d' or '%d %B %Y'",
 }
 
 
@@ -474,6 +504,22 @@ def _convert(name: str, value: object, meta: Mapping, section: str, source: str,
             raise ConfigError(
                 f"{label} must be one of {opts}. Got {value!r} ({_type_name(value)}) instead.{hint}"
             )
+        return value
+    if kind == "name":
+        import re
+
+        if not isinstance(value, str) or not re.fullmatch(r"(?:[A-Za-z0-9][A-Za-z0-9_-]{0,39})?", value):
+            raise bad(_KIND_TEXT["name"])
+        return value
+    if kind == "date_format":
+        import datetime as _dt
+
+        try:
+            ok = isinstance(value, str) and "%" in value and bool(_dt.date(2026, 11, 16).strftime(value))
+        except (ValueError, TypeError):
+            ok = False
+        if not ok:
+            raise bad(_KIND_TEXT["date_format"])
         return value
     if kind == "week":
         if not isinstance(value, str):
@@ -724,6 +770,8 @@ def _type_text(meta: Mapping) -> str:
         "week": "string",
         "str_list": "list of strings",
         "encoding": "string",
+        "name": "string",
+        "date_format": "string",
     }[kind]
     return base + _range_text(meta)
 

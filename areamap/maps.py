@@ -16,7 +16,8 @@ Colours
   warm means "excess". For ratios the neutral centre sits at 1 on the log scale.
 * ``"cividis"``: matplotlib's colour-vision-friendly map, reversed so light
   means low.
-* Local clusters: colours from the Okabe & Ito (2008) colour-blind-safe set.
+* Local clusters: the ends of the diverging palette; groups solid, outliers hatched
+  inside a thick outline of the same hue (see :func:`cluster_map`).
 
 All maps are analytic aids, not public-health directives.
 """
@@ -60,6 +61,7 @@ __all__ = [
     "CAUTION_TEXT",
     "CLUSTER_LABELS",
     "CLUSTER_COLOURS",
+    "CLUSTER_STYLE",
     "DEFAULT_RISK_STEPS",
     "SCHEMES",
     "Classification",
@@ -89,20 +91,35 @@ CAUTION_TEXT = (
     "authority. Ratios from small counts are unstable; area figures describe places, not individuals."
 )
 
-#: Labels of the local-cluster map, in legend order.
-
-#: Okabe & Ito (2008) colours: warm for a high focal area, cool for a low one; the
-#: lighter member of each pair marks the outlier (focal value unlike its neighbours).
-CLUSTER_COLOURS = {
-    "High-High": "#D55E00",  # vermillion
-    "Low-Low": "#0072B2",  # blue
-    "High-Low": "#E69F00",  # orange
-    "Low-High": "#56B4E9",  # sky blue
-    "not significant": "#E6E6E6",  # light grey: recedes
-    "no neighbours": "#FFFFFF",  # white, dotted: not assessed
+#: How the local-cluster map draws each category of :data:`CLUSTER_LABELS`: the main colour of the
+#: category (fill for groups, outline-and-hatch colour for outliers) and its legend name. Designed for
+#: this package (see :func:`cluster_map`, Notes); the three colours are the two ends and the neutral
+#: centre of the package's diverging palette, so "high" and "low" look the same on every map. Hue says whether the district's own value is high
+#: (burnt orange, the package's "excess" colour) or low (deep blue); a solid fill says its neighbours
+#: agree (a group), diagonal hatching inside a thick outline of the same hue says they do not (an
+#: outlier); districts with no local pattern stay almost white so the signals stand out.
+CLUSTER_STYLE = {
+    "High-High": {"colour": "#9B3B09", "fill": True, "hatch": None,
+                  "name": "high, in a high group"},
+    "Low-Low": {"colour": "#005099", "fill": True, "hatch": None,
+                "name": "low, in a low group"},
+    "High-Low": {"colour": "#9B3B09", "fill": False, "hatch": "////",
+                 "name": "high, neighbours low"},
+    "Low-High": {"colour": "#005099", "fill": False, "hatch": "\\\\",
+                 "name": "low, neighbours high"},
+    "not significant": {"colour": "#F5F3F0", "fill": True, "hatch": None,
+                        "name": "no local pattern"},
+    "no neighbours": {"colour": "#FFFFFF", "fill": True, "hatch": "..",
+                      "name": "not assessed (no neighbours)"},
 }
 
+#: Main colour per cluster category (kept for callers that colour other marks by category).
+CLUSTER_COLOURS = {k: v["colour"] for k, v in CLUSTER_STYLE.items()}
+
 _MISSING_FACE = "#FFFFFF"
+#: Smallest text size (points). At 96 CSS px per inch 7.5 pt is 10 px, so a figure drawn at its display
+#: width keeps every label at or above 9 px even when a print layout shrinks it by 10 %.
+_SMALL_PT = 7.5
 _HATCH_COLOUR = "#555555"
 _EDGE = "#7A7A7A"
 # ------------------------------------------------------------------------ input helpers
@@ -339,7 +356,7 @@ def _scale_bar(ax: Axes, gdf) -> str | None:
     for i, face in enumerate(("#222222", "#FFFFFF")):
         ax.add_patch(Rectangle((x0 + i * length / 2, y0), length / 2, h, facecolor=face,
                                edgecolor="#222222", linewidth=0.6, zorder=5, gid="scale-bar"))
-    ax.text(x0 + length / 2, y0 + 1.8 * h, text, ha="center", va="bottom", fontsize=7, zorder=5,
+    ax.text(x0 + length / 2, y0 + 1.8 * h, text, ha="center", va="bottom", fontsize=_SMALL_PT, zorder=5,
             path_effects=[patheffects.withStroke(linewidth=2, foreground="white")])
     return None
 
@@ -405,7 +422,7 @@ def add_map_furniture(
     note = _scale_bar(ax, gdf) if scale_bar else None
     text = _caption(source, caption, note)
     if text:
-        ax.text(0.0, -0.01, text, transform=ax.transAxes, ha="left", va="top", fontsize=6.5,
+        ax.text(0.0, -0.01, text, transform=ax.transAxes, ha="left", va="top", fontsize=_SMALL_PT,
                 color="#333333", gid="caption")
     mask = _area_mask(gdf, label_areas, "add_map_furniture", "label_areas")
     if mask.any():
@@ -413,14 +430,14 @@ def add_map_furniture(
                  else pd.Series(gdf.index.astype(str), index=gdf.index))
         pts = gdf.geometry[mask].representative_point()
         for (x, y), name in zip(zip(pts.x, pts.y), names[mask]):
-            ax.annotate(_plain(name), (x, y), fontsize=7, ha="center", va="center", zorder=6,
+            ax.annotate(_plain(name), (x, y), fontsize=_SMALL_PT, ha="center", va="center", zorder=6,
                         path_effects=[patheffects.withStroke(linewidth=2.2, foreground="white")])
     return ax
 
 
 def _legend(ax: Axes, handles, title: str | None, *, loc="upper left") -> None:
     leg = ax.legend(handles=handles, title=_plain(title) if title else None, loc=loc, bbox_to_anchor=(1.01, 1.0),
-                    fontsize=7.5, title_fontsize=8, frameon=False, handlelength=1.6, handleheight=1.1)
+                    fontsize=_SMALL_PT, title_fontsize=8, frameon=False, handlelength=1.6, handleheight=1.1)
     leg.set_gid("map-legend")
 
 
@@ -686,7 +703,7 @@ def raw_beside_smoothed(
         fig.suptitle(_plain(head), fontsize=12)
     text = _caption(source, caption, None)
     if text:
-        fig.supxlabel(text, fontsize=7, x=0.01, ha="left", color="#333333")
+        fig.supxlabel(text, fontsize=_SMALL_PT, x=0.01, ha="left", color="#333333")
     return fig
 
 
@@ -736,8 +753,9 @@ def bivariate_map(
 
     Notes
     -----
-    Colours come from :func:`bivariate_colours`. A high ratio with a low
-    probability (light orange) is a high estimate the data barely support.
+    Colours come from :func:`bivariate_colours`: the inconclusive column is
+    pale whatever the risk class, so a high estimate the data barely support
+    looks pale, and only clear signals are saturated.
 
     Examples
     --------
@@ -788,20 +806,20 @@ def bivariate_map(
                 leg.add_patch(Rectangle((c, r), 1, 1, facecolor=grid[r, c], edgecolor="white",
                                         linewidth=1.0, gid=f"bivariate-cell-{r}-{c}"))
                 lum = 0.2126 * grid[r, c, 0] + 0.7152 * grid[r, c, 1] + 0.0722 * grid[r, c, 2]
-                leg.text(c + 0.5, r + 0.5, str(counts[r, c]), ha="center", va="center", fontsize=7,
+                leg.text(c + 0.5, r + 0.5, str(counts[r, c]), ha="center", va="center", fontsize=_SMALL_PT,
                          color="white" if lum < 0.45 else "#222222")
         leg.set_xlim(0, 3)
         leg.set_ylim(0, 3)
         leg.set_aspect("equal")
-        leg.set_xticks([0.5, 1.5, 2.5], [s.replace(" – ", "–") for s in cp.labels], fontsize=6.5,
+        leg.set_xticks([0.5, 1.5, 2.5], [s.replace(" – ", "–") for s in cp.labels], fontsize=_SMALL_PT,
                        rotation=35, ha="right", rotation_mode="anchor")
-        leg.set_yticks([0.5, 1.5, 2.5], [s.replace(" – ", "–") for s in cr.labels], fontsize=6.5)
-        leg.set_xlabel(f"P(relative risk > {threshold:g})", fontsize=7)
-        leg.set_ylabel("Relative risk", fontsize=7)
+        leg.set_yticks([0.5, 1.5, 2.5], [s.replace(" – ", "–") for s in cr.labels], fontsize=_SMALL_PT)
+        leg.set_xlabel(f"P(relative risk > {threshold:g})", fontsize=_SMALL_PT)
+        leg.set_ylabel("Relative risk", fontsize=_SMALL_PT)
         leg.tick_params(length=0)
         for s in leg.spines.values():
             s.set_visible(False)
-        leg.set_title("areas per class", fontsize=7)
+        leg.set_title("areas per class", fontsize=_SMALL_PT)
         if handles:
             _legend(ax, handles, None, loc="upper left")
     add_map_furniture(ax, gdf, title=title, period=period, source=source, caption=caption,
@@ -921,8 +939,9 @@ def cluster_map(
     scale_bar: bool = True,
     label_areas=None,
     label_column: str | None = "area_name",
+    names: dict[str, str] | None = None,
 ) -> Axes:
-    """Map local-cluster categories with the colour-blind-safe :data:`CLUSTER_COLOURS`.
+    """Map local-cluster categories: groups as solid fills, outliers as hatched outlines.
 
     Parameters
     ----------
@@ -931,13 +950,30 @@ def cluster_map(
         One of :data:`CLUSTER_LABELS` per area (None/NaN for missing).
     ax, title, legend, missing_label, period, source, caption, scale_bar, label_areas, label_column
         As in :func:`choropleth`.
+    names : dict, optional
+        Legend names per category (keys from :data:`CLUSTER_LABELS`), e.g. a
+        translation; default the ``name`` entries of :data:`CLUSTER_STYLE`.
 
     Returns
     -------
     matplotlib Axes
+        The legend is an inset axes (``gid="cluster-legend"``) with three
+        columns: the swatch, the category name and the number of districts.
 
     Notes
     -----
+    Encoding (chosen for this package): two visual channels for the two
+    questions a reader asks. Hue answers "is this district's own value high or
+    low?" (burnt orange high, deep blue low; the same directions as the ratio
+    maps, and the pair stays apart under red-green colour-vision deficiency).
+    Texture answers "do its neighbours agree?": a solid fill marks a group
+    (the published quadrant terms High-High and Low-Low), a thick outline
+    with diagonal hatching in the same hue marks an outlier (High-Low,
+    Low-High), so an outlier never reads as a weaker version of a group, and
+    it stays recognisable in greyscale print. Districts without a local
+    pattern are almost white and recede. The number of districts per category
+    sits in its own legend column so names and counts align.
+
     A cluster label says the area and its neighbours together are unusual
     under random placement of the values; it depends on the neighbour graph
     and the multiple-testing rule, and a single area's label is less reliable
@@ -949,8 +985,9 @@ def cluster_map(
     >>> from shapely.geometry import box
     >>> g = gpd.GeoDataFrame(geometry=[box(0, 0, 1, 1), box(1, 0, 2, 1)], crs=27700)
     >>> ax = cluster_map(g, ["High-High", "not significant"])
-    >>> [t.get_text() for t in ax.get_legend().get_texts()][:2]
-    ['High-High (1)', 'Low-Low (0)']
+    >>> leg = next(a for a in ax.child_axes if a.get_gid() == "cluster-legend")
+    >>> [t.get_text() for t in leg.texts][1:4]
+    ['districts', 'high, in a high group', '1']
     """
     func = "cluster_map"
     _check_gdf(gdf, func)
@@ -963,26 +1000,65 @@ def cluster_map(
             f"{func} got unknown cluster label(s) {format_examples(repr(b) for b in bad)}. "
             f"Use one of {', '.join(repr(c) for c in CLUSTER_LABELS)} (None for missing)."
         )
+    legend_names = {k: v["name"] for k, v in CLUSTER_STYLE.items()}
+    if names is not None:
+        unknown = sorted(set(names) - set(CLUSTER_LABELS))
+        if unknown:
+            raise ParameterError(
+                f"The 'names' parameter of {func} must map categories from CLUSTER_LABELS to legend names. "
+                f"Got unknown key(s) {format_examples(repr(u) for u in unknown)} instead."
+            )
+        legend_names.update({k: str(v) for k, v in names.items()})
     face = np.tile(to_rgba(_MISSING_FACE), (len(gdf), 1))
-    for name, col in CLUSTER_COLOURS.items():
-        face[(s == name).to_numpy()] = to_rgba(col)
+    for name, style in CLUSTER_STYLE.items():
+        if style["fill"]:
+            face[(s == name).to_numpy()] = to_rgba(style["colour"])
     ax = _new_map_ax(ax, gdf)
     paths = _area_paths(gdf.geometry)
     lw = _linewidth(len(gdf))
     _draw(ax, paths, face, gid="areas", linewidth=lw)
-    isolated = (s == "no neighbours").to_numpy()
-    if isolated.any():
-        _draw(ax, [paths[i] for i in np.flatnonzero(isolated)], "none", gid="no-neighbours",
-              edgecolor=_HATCH_COLOUR, linewidth=0.0, hatch="..", zorder=2)
-    handles = [Patch(facecolor=col, edgecolor=_EDGE, linewidth=0.5, hatch=".." if name == "no neighbours" else None,
-                     label=f"{name} ({int((s == name).sum())})") for name, col in CLUSTER_COLOURS.items()]
+    for name, style in CLUSTER_STYLE.items():
+        members = np.flatnonzero((s == name).to_numpy())
+        if style["hatch"] is None or not len(members):
+            continue
+        outlier = not style["fill"]
+        _draw(ax, [paths[i] for i in members], "none", gid=f"cluster-{name.lower().replace(' ', '-')}",
+              edgecolor=style["colour"] if outlier else _HATCH_COLOUR,
+              linewidth=max(1.6 * lw, 1.0) if outlier else 0.0, hatch=style["hatch"], zorder=2)
+    handles: list = []
     _missing_layers(ax, paths, handles, [(miss, missing_label, "////", "missing")])
     _frame_map(ax, gdf)
     if legend:
-        _legend(ax, handles, "Local cluster")
+        _cluster_legend(ax, s, legend_names, miss, missing_label)
     add_map_furniture(ax, gdf, title=title, period=period, source=source, caption=caption,
                       scale_bar=scale_bar, label_areas=label_areas, label_column=label_column)
     return ax
+
+
+def _cluster_legend(ax: Axes, s: pd.Series, names: dict[str, str], miss: np.ndarray, missing_label: str) -> Axes:
+    """Legend as a small table: swatch | category name | number of districts (right-aligned)."""
+    rows = [(CLUSTER_STYLE[k], names[k], int((s == k).sum())) for k in CLUSTER_LABELS]
+    if miss.any():
+        rows.append(({"colour": _HATCH_COLOUR, "fill": False, "hatch": "////", "thin": True},
+                      missing_label, int(miss.sum())))
+    n = len(rows) + 1
+    leg = ax.inset_axes([1.03, 1.0 - 0.075 * n, 0.62, 0.075 * n])
+    leg.set_gid("cluster-legend")
+    leg.set_xlim(0, 10)
+    leg.set_ylim(n, 0)
+    leg.axis("off")
+    leg.text(0, 0.5, "Local pattern", fontsize=8, fontweight="bold", va="center")
+    leg.text(10, 0.5, "districts", fontsize=_SMALL_PT, va="center", ha="right", color="#444444")
+    for i, (style, name, count) in enumerate(rows, start=1):
+        y = i + 0.5
+        outline = not style["fill"]
+        leg.add_patch(Rectangle((0, y - 0.35), 1.2, 0.7, facecolor="white" if outline else style["colour"],
+                                edgecolor=style["colour"] if outline else _EDGE,
+                                linewidth=0.6 if style.get("thin") or not outline else 1.4,
+                                hatch=style["hatch"], gid=f"cluster-swatch-{i - 1}"))
+        leg.text(1.6, y, _plain(name), fontsize=_SMALL_PT, va="center")
+        leg.text(10, y, str(count), fontsize=_SMALL_PT, va="center", ha="right")
+    return leg
 
 
 # ------------------------------------------------------------------------ funnel
@@ -1151,7 +1227,7 @@ def funnel_plot(
                    label=f"{lab} ({int(mask.sum())})", zorder=3, gid=f"funnel-points-{lab.split()[0]}")
     used_names = np.array(names, dtype=object)[use]
     for x, y, nm in zip(eu[outer], ratio[outer], used_names[outer]):
-        ax.annotate(_plain(nm), (x, y), xytext=(4, 3), textcoords="offset points", fontsize=7, gid="funnel-label")
+        ax.annotate(_plain(nm), (x, y), xytext=(4, 3), textcoords="offset points", fontsize=_SMALL_PT, gid="funnel-label")
     if log_x:
         ax.set_xscale("log")
         _plain_log_ticks(ax.xaxis)
@@ -1159,14 +1235,14 @@ def funnel_plot(
     ax.set_ylabel("Standardized ratio (observed / expected)")
     # The limits explode as E -> 0; scale the axis to the points, not to the limits at tiny E.
     ax.set_ylim(0, max(2.0, 1.15 * float(ratio.max())))
-    ax.legend(fontsize=7.5, frameon=False, loc="upper right")
+    ax.legend(fontsize=_SMALL_PT, frameon=False, loc="upper right")
     if title:
         ax.set_title(_plain(title), loc="left", fontsize=11)
     note = f"{int((~use).sum())} area(s) with no expected count left out." if (~use).any() else None
     method = "Exact Poisson limits (Spiegelhalter 2005) around a ratio of 1." + (f" {note}" if note else "")
     text = _caption(None, caption, method)
     if text:
-        ax.text(0.0, -0.12, text, transform=ax.transAxes, ha="left", va="top", fontsize=6.5,
+        ax.text(0.0, -0.12, text, transform=ax.transAxes, ha="left", va="top", fontsize=_SMALL_PT,
                 color="#333333", gid="caption")
     return ax
 
@@ -1255,7 +1331,7 @@ def moran_scatterplot(values, graph, *, ax: Axes | None = None, title: str | Non
     ax.set_title(_plain(title or "Moran scatterplot"), loc="left", fontsize=11)
     if (~keep).any():
         ax.text(0.0, -0.1, f"{int((~keep).sum())} area(s) without neighbours not plotted.",
-                transform=ax.transAxes, fontsize=7, va="top")
+                transform=ax.transAxes, fontsize=_SMALL_PT, va="top")
     return ax
 
 
@@ -1398,7 +1474,7 @@ def ranked_interval_plot(
         ax.set_yscale("log")
         _plain_log_ticks(ax.yaxis)
     if est.size <= 40:
-        ax.set_xticks(xs, [_plain(n) for n in names], rotation=90, fontsize=7)
+        ax.set_xticks(xs, [_plain(n) for n in names], rotation=90, fontsize=_SMALL_PT)
     else:
         ax.set_xlabel("Areas ranked by estimate")
     ax.set_ylabel(ylabel)

@@ -301,3 +301,32 @@ def test_archive_permissions_are_kept(archive):
     archive.stage_period("2026-W47", _frame([True] * 4), run_id="r")
     archive.promote_period("r")
     assert stat.S_IMODE(os.stat(archive.path).st_mode) == 0o600
+
+
+# ----------------------------------------------------------------------- settings per period
+def test_settings_are_recorded_and_a_change_stops(tmp_path):
+    from areamap.archive import HistoryArchive
+
+    a = HistoryArchive(tmp_path / "h.sqlite")
+    flags = pd.DataFrame({"flag": [True, False]}, index=["A", "B"])
+    settings = {"window_weeks": 1, "model": {"model": "bym2"}, "flags": {"min_probability": 0.8}}
+    a.write_period("2026-W46", flags, settings=settings, series="")
+    assert a.settings("2026-W46") == settings
+    a.check_settings("2026-W47", settings)  # same settings: nothing raised
+    a.check_settings("2026-W46", {**settings, "window_weeks": 4})  # no earlier period than 2026-W46
+    changed = {**settings, "window_weeks": 4, "flags": {"min_probability": 0.9}}
+    with pytest.raises(ArchiveError, match=r"flags.min_probability: 0.8 in the archive, 0.9 in this run; "
+                                           r"window_weeks: 1 in the archive, 4 in this run") as info:
+        a.check_settings("2026-W47", changed)
+    assert '[output] series = "w4-bym2"' in str(info.value)
+
+
+def test_archives_without_recorded_settings_are_checked_on_the_window(tmp_path):
+    from areamap.archive import HistoryArchive
+
+    a = HistoryArchive(tmp_path / "h.sqlite")
+    a.write_period("2026-W46", pd.DataFrame({"flag": [True]}, index=["A"]), window_weeks=2)
+    assert a.settings("2026-W46") == {"window_weeks": 2}
+    a.check_settings("2026-W47", {"window_weeks": 2, "model": {"model": "leroux"}})
+    with pytest.raises(ArchiveError, match="window_weeks: 2 in the archive, 1 in this run"):
+        a.check_settings("2026-W47", {"window_weeks": 1})

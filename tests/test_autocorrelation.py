@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -29,22 +30,13 @@ from conftest import grid_graph
 
 
 # ---------------------------------------------------------------- fixtures
-def _read_gal(path) -> tuple[list[int], list[tuple[int, int]]]:
-    """Parse a GAL neighbour file: header line, then 'id count' / 'neighbour ids' line pairs."""
-    lines = [ln.split() for ln in path.read_text().splitlines() if ln.strip()]
-    ids, edges = [], []
-    for head, nbrs in zip(lines[1::2], lines[2::2]):
-        a = int(head[0])
-        ids.append(a)
-        edges.extend((a, int(b)) for b in nbrs)
-    return ids, edges
-
-
 @pytest.fixture(scope="module")
-def nc_graph(sids2_dir, nc) -> AreaGraph:
-    """Queen graph of the NC counties from the sids2.gal file shipped with libpysal, in the shapefile's order."""
-    _, edges = _read_gal(sids2_dir / "sids2.gal")
-    return AreaGraph.from_edges(nc["FIPSNO"].astype(int).tolist(), edges)
+def nc_graph(nc) -> AreaGraph:
+    """Rook contiguity of the NC counties, from our own edge list built from the open polygons
+    (tests/reference/nc_graph_edges.csv, column in_rook; see tests/reference/README.md), in the shapefile's order."""
+    edges = pd.read_csv(Path(__file__).parent / "reference" / "nc_graph_edges.csv", dtype={"FIPS_a": str, "FIPS_b": str})
+    sel = edges[edges["in_rook"] == 1]
+    return AreaGraph.from_edges(nc["FIPS"].astype(str).tolist(), sel[["FIPS_a", "FIPS_b"]].itertuples(index=False))
 
 
 def _dense(graph: AreaGraph, style: str) -> np.ndarray:

@@ -179,10 +179,12 @@ def demo_run(tmp_path_factory):
     out = folder / "bulletin"
     messages: list[str] = []
     previous = run_bulletin(config, period="2026-W46", out=out)
-    previous_csv = pd.read_csv(out / "areas.csv", dtype={"area_id": str})
+    previous_csv = pd.read_csv(previous.out / "areas.csv", dtype={"area_id": str})
     result = run_bulletin(config, out=out, progress=messages.append)
-    return {"folder": folder, "config": config, "out": out, "result": result, "previous": previous,
-            "previous_csv": previous_csv, "messages": messages}
+    # one folder per period under the output root, by default
+    assert previous.out == out / "2026-W46" and result.out == out / "2026-W47"
+    return {"folder": folder, "config": config, "out": result.out, "root": out, "result": result,
+            "previous": previous, "previous_csv": previous_csv, "messages": messages}
 
 
 @pytest.mark.slow
@@ -195,6 +197,8 @@ def test_outputs_exist_with_named_columns(demo_run):
                                                           MARKER_NAME])
     table = pd.read_csv(out / "areas.csv", dtype={"area_id": str})
     assert list(table.columns) == list(AREA_COLUMNS)
+    assert sorted(p.name for p in demo_run["root"].iterdir()) == ["2026-W46", "2026-W47", "latest.html"]
+    assert 'url=2026-W47/index.html' in (demo_run["root"] / "latest.html").read_text()
     boundaries = gpd.read_file(demo_run["folder"] / "districts.gpkg")
     assert table["area_id"].tolist() == boundaries["district_id"].astype(str).tolist()  # boundaries order
     assert set(table["cluster"]) <= {"High-High", "Low-Low", "High-Low", "Low-High", "not significant",
@@ -218,7 +222,8 @@ def test_numbers_are_consistent(demo_run):
     # internal reference: expected counts add up to the observed total (indirect standardization identity)
     np.testing.assert_allclose(t["expected"].sum(), t["observed"].sum(), rtol=1e-9)  # CSV keeps 10 digits
     np.testing.assert_allclose(t["sir"], t["observed"] / t["expected"], rtol=1e-8)  # same rounding
-    # exact Poisson limits (Garwood 1936; chi-square form, e.g. Breslow & Day 1987 vol. II, eq. 2.11)
+    # exact Poisson limits (Garwood 1936; chi-square form as in Breslow & Day 1987 vol. II, eq. 2.11 -- the
+    # equation number is from memory)
     o = t["observed"].to_numpy()
     low = np.where(o > 0, stats.chi2.ppf(0.025, 2 * o) / 2, 0.0) / t["expected"]
     high = stats.chi2.ppf(0.975, 2 * (o + 1)) / 2 / t["expected"]
@@ -319,7 +324,8 @@ def test_run_json_provenance(demo_run):
 def test_flags_follow_the_rule_and_the_history(demo_run):
     t = pd.read_csv(demo_run["out"] / "areas.csv", dtype={"area_id": str}).set_index("area_id")
     prev = demo_run["previous_csv"].set_index("area_id")
-    rule = (t["p_above_1"] >= 0.8) | (t["cluster"] == "High-High")  # the demo's [flags]: defaults
+    # the demo's [flags] are the defaults; the 0.8 cut-off is the decision band of Richardson et al. (2004)
+    rule = (t["p_above_1"] >= 0.8) | (t["cluster"] == "High-High")
     assert (t["flag"] == rule).all()
     assert (t.loc[t["flag"], "flag_reason"].str.len() > 0).all()
     assert (t.loc[~t["flag"], "flag_reason"].fillna("") == "").all()
@@ -337,11 +343,16 @@ def test_html_suppresses_small_counts_and_escapes(demo_run):
     import re
 
     html = (demo_run["out"] / "index.html").read_text(encoding="utf-8")
-    cells = re.findall(r'<tr class="flagged-row[^"]*"[^>]*>\s*<td>.*?</td>\s*<td class="num">([^<]*)</td>',
+    cells = re.findall(r'<tr class="flagged-row[^"]*"[^>]*>.*?<td class="num observed">([^<]*)</td>',
                        html, flags=re.S)
     assert len(cells) == demo_run["result"].run_info["flags"]["total"]
     assert not {"1", "2", "3", "4"} & set(cells)
-    assert "<script" not in html
+    # the explorable map's table suppresses the same way: observed cells never show 1-4
+    rows = re.findall(r'<tr data-id="[^"]*"><th scope="row">[^<]*</th><td(?: data-sort="[^"]*")?>([^<]*)</td>', html)
+    assert len(rows) == len(demo_run["result"].areas)
+    assert not {"1", "2", "3", "4"} & set(rows) and "&lt;5" in rows
+    # the only script is the page's own inline one; nothing is loaded
+    assert html.count("<script") == 1 and "<script src" not in html
 
 
 @pytest.mark.slow
@@ -363,11 +374,13 @@ def test_public_tables_suppress_small_counts_and_rerun_is_repeatable(demo_run, t
     assert len(archive.read_period("2026-W47")) == len(full)
     small = full.index[(full["observed"] >= 1) & (full["observed"] <= 4)]
     assert len(small) > 0  # the demo has small counts
-    for table in (pd.read_csv(out / "areas.csv", dtype={"area_id": str, "observed": str}),
-                  gpd.read_file(out / "areas.gpkg")):
+    for table in (pd.read_csv(result.out / "areas.csv", dtype={"area_id": str, "observed": str}),
+                  gpd.read_file(result.out / "areas.gpkg")):
         table = table.set_index("area_id")
         assert (table.loc[small, "observed"] == "<5").all()
-        assert table.loc[small, ["sir", "sir_low", "sir_high", "eb_rr"]].isna().all().all()
+        # the rate gives the count back with the population: withheld like the SIR
+        withheld = ["sir", "sir_low", "sir_high", "eb_rr", "rate_per_100k", "rate_low", "rate_high"]
+        assert table.loc[small, withheld].isna().all().all()
         big = full.index[full["observed"] >= 5]
         assert (table.loc[big, "observed"].astype(int) == full.loc[big, "observed"]).all()
 
@@ -415,13 +428,13 @@ def test_bad_input_exits_2_and_changes_nothing(demo_copy, breakage, capsys):
 
 @pytest.mark.slow
 def test_internal_failure_exits_1_and_keeps_previous_bulletin(demo_copy, monkeypatch, capsys):
-    import areamap.bulletin.render as bulletin
+    import areamap.bulletin.page_figures as page_figures
     from areamap.cli import main
 
     def broken(*args, **kwargs):
         raise RuntimeError("figure engine exploded")
 
-    monkeypatch.setattr(bulletin, "_figures", broken)
+    monkeypatch.setattr(page_figures, "bulletin_figures", broken)
     out = demo_copy / "bulletin"
     state = _hash_state(out, demo_copy / "history.sqlite")
     assert main(["bulletin", str(demo_copy / "run.toml"), "--out", str(out), "--quiet"]) == 1
@@ -432,8 +445,11 @@ def test_internal_failure_exits_1_and_keeps_previous_bulletin(demo_copy, monkeyp
 def test_bulletin_refuses_a_folder_with_other_files(demo_copy, capsys):
     from areamap.cli import main
 
-    # the demo folder itself holds the inputs: never replaced
-    assert main(["bulletin", str(demo_copy / "run.toml"), "--out", str(demo_copy), "--quiet"]) == 2
+    # without per-period folders the output folder is replaced: the demo folder holds the inputs, refused
+    config = demo_copy / "run.toml"
+    text = config.read_text()
+    config.write_text(text.replace("[output]", "[output]\nper_period = false", 1))
+    assert main(["bulletin", str(config), "--out", str(demo_copy), "--quiet"]) == 2
     assert "contains the" in capsys.readouterr().err
 
 
@@ -450,7 +466,9 @@ def test_history_command(demo_copy, demo_run, capsys):
     assert main(["history", str(demo_copy / "run.toml"), "--last", "1"]) == 0
     text = capsys.readouterr().out
     flagged_now = set(t.index[t["flag"]].astype(str))
-    shown = {ln.split()[1] for ln in text.splitlines() if ln.startswith("2026-W47")}
+    shown = {ln.split()[2] for ln in text.splitlines() if ln.startswith("2026-W47")}
+    assert "window_weeks" in text.splitlines()[1]  # the window of each period is shown
+    assert all(ln.split()[1] == "1" for ln in text.splitlines() if ln.startswith("2026-W47"))
     assert shown == flagged_now
     assert main(["history", str(demo_copy / "run.toml"), "--area", "NOPE"]) == 2
     assert "not in the history archive" in capsys.readouterr().err
@@ -471,9 +489,10 @@ def test_demo_command_runs_two_periods(tmp_path, capsys):
     from areamap.cli import main
 
     assert main(["demo", "--out", str(tmp_path)]) == 0
-    assert (tmp_path / "bulletin" / "index.html").exists()
+    assert (tmp_path / "bulletin" / "2026-W46" / "index.html").exists()
+    assert (tmp_path / "bulletin" / "latest.html").exists()
     assert HistoryArchive(tmp_path / "history.sqlite").periods() == ["2026-W46", "2026-W47"]
-    run = json.loads((tmp_path / "bulletin" / "run.json").read_text())
+    run = json.loads((tmp_path / "bulletin" / "2026-W47" / "run.json").read_text())
     assert run["period"]["key"] == "2026-W47" and run["flags"]["previous_available"]
 
 
@@ -524,9 +543,13 @@ def test_external_rates_times_window_weeks(demo_copy):
     text = (demo_copy / "run.toml").read_text()
     text = re.sub(r"window_weeks = \d+", "window_weeks = 2", text)
     text = re.sub(r"permutations = \d+", "permutations = 99", text)  # speed: the expected counts are checked
+    # other settings than the archive's periods: each run starts its own named series
+    text = text.replace("[output]", '[output]\nseries = "two-weeks"', 1)
     internal = run_bulletin(_write_config(demo_copy, "internal.toml", text), out=demo_copy / "b1")
     text = text.replace('reference = "internal"', 'reference = "external"\nrates_file = "rates.csv"')
+    text = text.replace('series = "two-weeks"', 'series = "two-weeks-external"')
     external = run_bulletin(_write_config(demo_copy, "external.toml", text), out=demo_copy / "b2")
+    assert (demo_copy / "history.two-weeks.sqlite").is_file()
     assert external.window_weeks == 2 and str(external.period_start) == "2026-11-09"
     # rates written with full float precision in CSV: agreement to 1e-9 relative
     np.testing.assert_allclose(external.to_frame()["expected"], internal.to_frame()["expected"], rtol=1e-9)
@@ -561,6 +584,87 @@ def test_analyse_period_writes_nothing_and_reproduces_the_bulletin(demo_run):
     assert "Analysis of 2026-W47" in analysis.summary()
 
 
+# ============================================================================ publication (issue 12)
+@pytest.mark.slow
+def test_changed_settings_stop_with_exit_2_and_a_way_on(demo_copy, capsys):
+    import re
+
+    from areamap.archive import HistoryArchive
+    from areamap.cli import main
+
+    config = demo_copy / "run.toml"
+    config.write_text(re.sub(r"window_weeks = \d+", "window_weeks = 3", config.read_text()))
+    before = _sha(demo_copy / "history.sqlite")
+    assert main(["bulletin", str(config), "--quiet"]) == 2
+    err = capsys.readouterr().err
+    assert "window_weeks: 1 in the archive, 3 in this run" in err
+    assert "[output] series" in err and "Traceback" not in err
+    assert _sha(demo_copy / "history.sqlite") == before
+    # the archive records each period's settings (window, model, flag rule)
+    recorded = HistoryArchive(demo_copy / "history.sqlite").settings("2026-W47")
+    assert recorded["window_weeks"] == 1 and recorded["model"]["model"] == "bym2"
+    assert recorded["flags"]["min_probability"] == 0.8
+
+
+@pytest.mark.slow
+def test_rates_per_100k_and_totals_from_the_inputs(demo_run):
+    """Crude rate = 100,000 x cases / population (definition) with exact Poisson limits (Garwood 1936,
+    via scipy's chi-square quantiles); totals recomputed from cases.csv."""
+    import scipy.stats as st
+
+    folder = demo_run["folder"]
+    t = pd.read_csv(demo_run["out"] / "areas.csv", dtype={"area_id": str}).set_index("area_id")
+    np.testing.assert_allclose(t["rate_per_100k"], 1e5 * t["observed"] / t["population"], rtol=1e-9)
+    o = t["observed"].to_numpy()
+    low = np.where(o > 0, st.chi2.ppf(0.025, 2 * o) / 2, 0.0)  # Garwood (1936) exact limits
+    high = st.chi2.ppf(0.975, 2 * o + 2) / 2
+    np.testing.assert_allclose(t["rate_low"], 1e5 * low / t["population"], rtol=1e-6)
+    np.testing.assert_allclose(t["rate_high"], 1e5 * high / t["population"], rtol=1e-6)
+    cases = pd.read_csv(folder / "cases.csv")
+    by_week = cases.groupby("week")["cases"].sum()
+    totals = demo_run["result"].run_info["totals"]
+    assert totals["current"] == by_week["2026-W47"] == t["observed"].sum()
+    assert totals["previous"] == by_week["2026-W46"]
+    before = by_week[by_week.index < "2026-W47"].tail(52)
+    assert totals["baseline_mean"] == pytest.approx(before.mean(), rel=1e-12)
+    np.testing.assert_array_equal(t["observed_previous"], cases[cases["week"] == "2026-W46"].groupby(
+        "district_id")["cases"].sum().reindex(t.index, fill_value=0))
+    html = (demo_run["out"] / "index.html").read_text(encoding="utf-8")
+    assert f"Cases this period: {totals['current']:,}" in html
+    assert "818.0 expected" not in html and "expected</li>" not in html
+
+
+def test_standardized_rate_columns_with_a_standard_population(demo_copy):
+    """Directly standardized rates with a standard population: columns in areas.csv next to the crude rate."""
+    import re
+
+    from areamap.bulletin import analyse_period
+
+    pop = pd.read_csv(demo_copy / "population.csv")
+    std = pop.groupby("age_group")["population"].sum().rename("population").reset_index()
+    std.to_csv(demo_copy / "standard.csv", index=False)
+    text = (demo_copy / "run.toml").read_text()
+    text = text.replace("[standardization]", '[standardization]\nstandard_population_file = "standard.csv"', 1)
+    text = re.sub(r"permutations = \d+", "permutations = 99", text)
+    (demo_copy / "std.toml").write_text(text)
+    a = analyse_period(demo_copy / "std.toml")
+    t = a.to_frame()
+    # the region's own population as the standard: the region-wide standardized rate equals its crude rate
+    # (direct standardization identity, Breslow & Day 1987 vol. II); per district the columns are finite
+    assert {"std_rate_per_100k", "std_rate_low", "std_rate_high"} <= set(t.columns)
+    assert np.isfinite(t["std_rate_per_100k"]).all()
+    assert (t["std_rate_low"] <= t["std_rate_per_100k"]).all() and (t["std_rate_per_100k"] <= t["std_rate_high"]).all()
+    # definition of the directly standardized rate: sum_a w_a * c_ia / n_ia with w_a the standard's shares
+    cases = pd.read_csv(demo_copy / "cases.csv")
+    c = cases[cases["week"] == a.period].pivot_table(index="district_id", columns="age_group", values="cases",
+                                                      aggfunc="sum", fill_value=0)
+    n = pop.pivot_table(index="district_id", columns="age_group", values="population", aggfunc="sum")
+    c = c.reindex(index=n.index, columns=n.columns, fill_value=0)
+    w = std.set_index("age_group")["population"].reindex(n.columns)
+    dsr = 1e5 * (c / n).mul(w / w.sum(), axis=1).sum(axis=1)
+    np.testing.assert_allclose(t["std_rate_per_100k"], dsr.reindex(t.index.astype(str)), rtol=1e-9)
+
+
 @pytest.mark.slow
 def test_kriged_risks_beside_car_estimates(tmp_path):
     """[smoothing] kriging = true adds kriged columns, a two-map figure and the semivariogram; flags unchanged."""
@@ -574,7 +678,7 @@ def test_kriged_risks_beside_car_estimates(tmp_path):
     out = tmp_path / "bulletin"
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        run_bulletin(config, out=out)
+        out = run_bulletin(config, out=out).out  # the period's own folder
         analysis = analyse_period(config)
     table = pd.read_csv(out / "areas.csv", dtype={"area_id": str})
     cols = list(AREA_COLUMNS)

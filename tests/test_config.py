@@ -109,7 +109,7 @@ def test_unknown_key_without_close_match_lists_valid_keys(folder):
         ("[graph]\nsnap = -1\n", r"Key 'snap' .* must be a number >= 0"),
         ('[flags]\nuse_clusters = "yes"\n', r"Key 'use_clusters' .* must be true or false"),
         ('[smoothing]\ncovariates = "income"\n', r"Key 'covariates' .* must be a list of strings"),
-        ('[period]\nweek = "2025-W53"\n', r"Key 'week' in \[period\] .* ISO week"),  # 2025 has 52 ISO weeks
+        ('[period]\nweek = "2025-W53"\n', r"Key 'week' in \[period\] .* ISO week"),  # 2025 has 52 ISO weeks (from memory: it starts on a Wednesday)
         ('[cases]\nfile = "cases.csv"\nencoding = "klingon"\n', r"unknown text encoding 'klingon'"),
         ("seed = -3\n", r"Key 'seed' at the top level of run.toml must be an integer >= 0"),
         ('graph = "queen"\n', r"'graph' in run.toml must be a table"),

@@ -36,7 +36,8 @@ def _counts(g: AreaGraph) -> dict[str, int]:
     return dict(zip(g.ids, g.neighbour_counts().tolist()))
 
 
-# Degrees on a 3x3 lattice follow from the definitions (corner, edge, centre cells).
+# Degrees on a 3x3 lattice, by definition of rook (shared edge) and queen (shared edge or corner) contiguity:
+# corner, edge and centre cells have 2, 3, 4 rook and 3, 5, 8 queen neighbours.
 QUEEN_3x3 = {"r0c0": 3, "r0c1": 5, "r1c1": 8, "r2c2": 3, "r1c0": 5}
 ROOK_3x3 = {"r0c0": 2, "r0c1": 3, "r1c1": 4, "r2c2": 2, "r1c0": 3}
 

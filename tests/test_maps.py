@@ -24,6 +24,7 @@ from areamap.errors import DataWarning, GraphError, InputError, ParameterError
 from areamap.maps import (
     CLUSTER_COLOURS,
     CLUSTER_LABELS,
+    CLUSTER_STYLE,
     bivariate_colours,
     bivariate_map,
     choropleth,
@@ -367,15 +368,40 @@ def test_bivariate_legend_has_nine_cells_with_right_colours(strip):
     for i, (r, c) in enumerate([(0, 0), (1, 1), (2, 2), (2, 0), (0, 2)]):
         np.testing.assert_allclose(face[i], grid[r, c], atol=1e-6)
     assert len(_collection(ax, "missing").get_paths()) == 1
-    # nine distinct colours; darkness grows with the evidence for the estimate's direction:
-    # with P(RR > c) in the middle and high rows, with 1 - P(RR > c) in the low row
+    # nine distinct colours; the inconclusive column is lighter than every certain cell, and in the
+    # certain columns darkness grows with the size of the estimate in the evidence's direction
     assert len({tuple(np.round(v, 4)) for v in grid.reshape(9, 4)}) == 9
     lightness = _srgb_to_lab(grid)[..., 0]
-    assert np.all(np.diff(lightness[1:], axis=1) < -10)
-    assert np.all(np.diff(lightness[0], axis=0) > 10)
+    assert lightness[:, 1].min() > lightness[:, [0, 2]].max() + 10
+    assert np.all(np.diff(lightness[:, 2]) < -10) and np.all(np.diff(lightness[:, 0]) > 10)
+
+
+def test_bivariate_rendered_uncertain_districts_are_pale(strip):
+    """Render the map and read each district's pixel colour: uncertain ones (P between 0.2 and 0.8, the
+    decision bands of Richardson et al. 2004)
+    must come out lighter (CIELAB L*) than every certain one, whatever their risk class."""
+    import matplotlib.pyplot as plt
+
+    rr = [0.6, 1.0, 1.6, 1.0, 1.6, 0.6]
+    pr = [0.05, 0.5, 0.95, 0.9, 0.5, 0.5]
+    fig, ax = plt.subplots(figsize=(6, 2), dpi=80)
+    bivariate_map(strip, rr, pr, ax=ax, legend=False, caption=False, scale_bar=False)
+    fig.canvas.draw()
+    pixels = np.asarray(fig.canvas.buffer_rgba())[..., :3] / 255.0
+    pts = strip.geometry.representative_point()
+    xy = ax.transData.transform(np.c_[pts.x, pts.y])
+    h = pixels.shape[0]
+    sampled = np.array([pixels[int(round(h - y)), int(round(x))] for x, y in xy])
+    lightness = _srgb_to_lab(sampled)[:, 0]
+    uncertain = (np.array(pr) > 0.2) & (np.array(pr) < 0.8)
+    assert lightness[uncertain].min() > lightness[~uncertain].max() + 10
+    # the sampled colours are the designed ones (8-bit rounding of the rendered image)
+    grid = bivariate_colours()
+    np.testing.assert_allclose(sampled[1], grid[1, 1, :3], atol=2 / 255)
 
 
 def test_exceedance_map_marks_richardson_bands(strip):
+    # decision bands 0.2 / 0.8: Richardson, Thomson, Best & Elliott (2004), Environ. Health Perspect. 112:1016
     p = [0.1, 0.5, 0.85, 0.96, 0.02, np.nan]
     ax = exceedance_map(strip, p)
     texts = _legend_texts(ax)
@@ -385,15 +411,38 @@ def test_exceedance_map_marks_richardson_bands(strip):
     assert "Richardson" in ax.get_legend().get_title().get_text()
 
 
-def test_cluster_map_colours_per_label(strip):
+def test_cluster_map_groups_solid_outliers_hatched(strip):
     labels = pd.Series(["High-High", "Low-Low", "High-Low", "Low-High", "not significant", "no neighbours"],
                        index=strip.index)
     ax = cluster_map(strip, labels)
     face = _collection(ax, "areas").get_facecolors()
     for i, lab in enumerate(labels):
-        np.testing.assert_allclose(face[i], to_rgba(CLUSTER_COLOURS[lab]), atol=1e-6)
-    assert [t.rsplit(" (", 1)[0] for t in _legend_texts(ax)] == list(CLUSTER_LABELS)
-    assert len({CLUSTER_COLOURS[k] for k in CLUSTER_LABELS}) == 6
+        expected = CLUSTER_COLOURS[lab] if CLUSTER_STYLE[lab]["fill"] else "#FFFFFF"
+        np.testing.assert_allclose(face[i], to_rgba(expected), atol=1e-6)
+    # outliers: a hatched, thick outline in the hue of their own value
+    high_low = _collection(ax, "cluster-high-low")
+    assert high_low.get_hatch() == "////"
+    np.testing.assert_allclose(high_low.get_edgecolor()[0], to_rgba(CLUSTER_COLOURS["High-High"]), atol=1e-6)
+    assert high_low.get_linewidth()[0] >= 1.0
+    assert _collection(ax, "cluster-low-high").get_hatch() == "\\\\"
+    # legend: own names in one column, counts in their own column (no "(n)" after the names)
+    leg = next(a for a in ax.child_axes if a.get_gid() == "cluster-legend")
+    texts = [t.get_text() for t in leg.texts]
+    assert texts[:2] == ["Local pattern", "districts"]
+    names, counts = texts[2::2], texts[3::2]
+    assert names == [CLUSTER_STYLE[k]["name"] for k in CLUSTER_LABELS]
+    assert counts == ["1"] * 6
+    assert not any("(" in n and n.endswith(")") and n[-2].isdigit() for n in names)
+    count_x = {t.get_position()[0] for t in leg.texts[3::2]}
+    assert count_x == {10} and all(t.get_ha() == "right" for t in leg.texts[3::2])
+
+
+def test_cluster_map_legend_names_can_be_replaced(strip):
+    ax = cluster_map(strip, ["High-High"] * 6, names={"High-High": "hoch, Nachbarn hoch"})
+    leg = next(a for a in ax.child_axes if a.get_gid() == "cluster-legend")
+    assert leg.texts[2].get_text() == "hoch, Nachbarn hoch" and leg.texts[3].get_text() == "6"
+    with pytest.raises(ParameterError, match="The 'names' parameter of cluster_map"):
+        cluster_map(strip, ["High-High"] * 6, names={"HH": "x"})
 
 
 def test_cluster_map_rejects_unknown_labels(strip):
@@ -608,8 +657,9 @@ def _simulate(rgba, matrix):
         ("sequential", lambda: palette_colours("sequential", 9)),
         ("diverging", lambda: palette_colours("diverging", 9)),
         ("bivariate", lambda: bivariate_colours().reshape(9, 4)),
-        # "no neighbours" (white) is told apart from "not significant" by its dot hatching
-        ("clusters", lambda: [to_rgba(CLUSTER_COLOURS[k]) for k in CLUSTER_LABELS[:5]]),
+        # groups and the no-pattern fill; outliers share their group's hue and differ by hatching,
+        # "no neighbours" (white) by its dots
+        ("clusters", lambda: [to_rgba(CLUSTER_COLOURS[k]) for k in ("High-High", "Low-Low", "not significant")]),
     ],
 )
 def test_palettes_stay_distinguishable_under_red_green_deficiency(deficiency, name, colours):

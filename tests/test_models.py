@@ -34,7 +34,7 @@ def _ref(name: str) -> pd.DataFrame:
 
 
 def _nc_graph(nc, which: str) -> AreaGraph:
-    """Graph used by the reference runs: 'gal' (libpysal's sids2.gal = rook) or 'queen'."""
+    """Graph used by the reference runs, from our edge list built from the polygons: 'rook' or 'queen'."""
     edges = _ref("nc_graph_edges.csv")
     sel = edges[edges[f"in_{which}"] == 1]
     return AreaGraph.from_edges(nc["FIPS"].astype(str).tolist(),
@@ -77,10 +77,10 @@ def _simulated(graph: AreaGraph, seed: int = 1, scale: float = 20.0):
 @pytest.mark.parametrize(
     "key, prefix",
     [
-        (("gal", "bym2", False), "nc_bym2"),
+        (("rook", "bym2", False), "nc_bym2"),
         (("queen", "bym2", False), "nc_queen_bym2"),
-        (("gal", "leroux", False), "nc_leroux"),
-        (("gal", "bym2", True), "nc_bym2_covariate"),
+        (("rook", "leroux", False), "nc_leroux"),
+        (("rook", "bym2", True), "nc_bym2_covariate"),
     ],
 )
 def test_nc_matches_mcmc_reference(nc_fits, key, prefix):
@@ -106,9 +106,9 @@ def test_nc_matches_mcmc_reference(nc_fits, key, prefix):
 @pytest.mark.parametrize(
     "key, prefix, params",
     [
-        (("gal", "bym2", False), "nc_bym2", ["sigma", "phi"]),
-        (("gal", "leroux", False), "nc_leroux", ["sigma", "rho"]),
-        (("gal", "bym2", True), "nc_bym2_covariate", ["sigma", "phi"]),
+        (("rook", "bym2", False), "nc_bym2", ["sigma", "phi"]),
+        (("rook", "leroux", False), "nc_leroux", ["sigma", "rho"]),
+        (("rook", "bym2", True), "nc_bym2_covariate", ["sigma", "phi"]),
     ],
 )
 def test_nc_hyperparameters_match_reference(nc_fits, key, prefix, params):
@@ -133,9 +133,9 @@ def test_nc_hyperparameters_match_reference(nc_fits, key, prefix, params):
 
 
 def test_nc_scaling_constant_matches_reference(nc):
-    """c for sids2.gal = 0.645493400698, from the reference script's dense Moore-Penrose inverse
+    """c for the rook graph = 0.645493400698, from the reference script's dense Moore-Penrose inverse
     (tests/reference/README.md). Both compute the same number, so agreement to 1e-8."""
-    gs = eng._GraphStructure(_nc_graph(nc, "gal").adjacency)
+    gs = eng._GraphStructure(_nc_graph(nc, "rook").adjacency)
     assert_allclose(gs.scale_per_component, [0.645493400698], rtol=1e-8)
 
 
@@ -143,7 +143,7 @@ def test_pc_prior_matches_reference_file(nc):
     """Exact PC prior log density of phi vs nc_pc_phi_prior.csv (reference script, same formula
     from Riebler et al. 2016 eq. for KLD); both use eigenvalues, so 1e-8 relative."""
     ref = _ref("nc_pc_phi_prior.csv")
-    gs = eng._GraphStructure(_nc_graph(nc, "gal").adjacency)
+    gs = eng._GraphStructure(_nc_graph(nc, "rook").adjacency)
     mine = gs.pc_phi_logdensity(ref["phi"].to_numpy(), upper=0.5, tail=2 / 3)
     assert_allclose(mine, ref["log_density"].to_numpy(), rtol=1e-8, atol=1e-8)
 

@@ -4,6 +4,8 @@
   flag rules and small-count suppression.
 * :mod:`~areamap.bulletin.render` -- figures, the HTML page and the tables.
 * :mod:`~areamap.bulletin.publish` -- the output folder, the archive transaction and :func:`run_bulletin`.
+* :mod:`~areamap.bulletin.wording` -- the string catalogue (audience, translation, date format).
+* :mod:`~areamap.bulletin.page_figures` -- the page's figures at display size, with alt texts.
 """
 
 from .analysis import (

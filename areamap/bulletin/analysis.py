@@ -62,17 +62,20 @@ __all__ = [
 
 AREA_COLUMNS = (
     "area_id", "area_name", "period_start", "period_end", "observed", "expected", "population",
+    "rate_per_100k", "rate_low", "rate_high",
     "sir", "sir_low", "sir_high", "eb_rr", "rr", "rr_low", "rr_high", "p_above_1",
-    "cluster", "cluster_p", "flag", "flag_reason", "flag_change", "weeks_flagged",
+    "cluster", "cluster_p", "flag", "flag_reason", "flag_change", "weeks_flagged", "observed_previous",
 )
 
+#: Columns added after ``rate_high`` when a standard population is configured.
+STANDARDIZED_RATE_COLUMNS = ("std_rate_per_100k", "std_rate_low", "std_rate_high")
 #: Columns added to the area table when ``[smoothing] kriging`` is on (after p_above_1 / p_above_threshold).
 KRIGING_COLUMNS = ("kriged_rr", "kriged_rr_low", "kriged_rr_high")
 
 
 #: Columns withheld (blank) in public tables for areas whose count is suppressed:
 #: with the expected count published, each of them gives the count back exactly.
-# (the list of columns withheld in public outputs lives in disclosure.DISCLOSING_COLUMNS)
+from .disclosure import DISCLOSING_COLUMNS as _DISCLOSING_COLUMNS  # noqa: E402 - one list, in disclosure
 
 _ADJUST_LABEL = {"fdr": "FDR q", "bonferroni": "Bonferroni-adjusted p", "none": "unadjusted p"}
 
@@ -358,6 +361,14 @@ class PeriodAnalysis:
         Role, name, path and SHA-256 of each input file.
     run_info : dict
         The provenance record (run.json without the output step's timings).
+        ``run_info["totals"]`` compares the region's cases this period with
+        the previous period and with the average of the weeks before.
+    weekly : pandas.DataFrame
+        The region per ISO week up to the end of the window (at most 104
+        weeks): columns ``cases``, ``population`` and ``rate_per_100k``.
+    settings : dict
+        The settings that make periods comparable (window, model, flag rule),
+        as recorded in the history archive.
     kriging : PoissonKrigingResult or None
         Area-to-area Poisson kriging of the window's counts when ``[smoothing] kriging``
         is on (None when off, or when the risk semivariogram showed nothing to model).
@@ -378,6 +389,8 @@ class PeriodAnalysis:
     rules: FlagRules = field(repr=False)
     inputs: tuple = field(repr=False)
     run_info: dict = field(repr=False)
+    weekly: object = field(default=None, repr=False)
+    settings: dict = field(default_factory=dict, repr=False)
     kriging: object = field(default=None, repr=False)
 
     @property
@@ -533,7 +546,7 @@ def analyse_period(
     inputs = _input_files(cfg)
     hashes = [{"role": role, "name": p.name, "path": str(p), "sha256": file_sha256(p)}
               for role, p in inputs if p.is_file()]
-    archive = HistoryArchive(cfg.output.archive)
+    archive = HistoryArchive(cfg.output.archive_path)
     rules = FlagRules(min_probability=cfg.flags.min_probability, use_clusters=cfg.flags.use_clusters,
                       min_observed=cfg.flags.min_observed, threshold=cfg.smoothing.threshold)
 
@@ -572,6 +585,8 @@ def analyse_period(
                 "rates are zero for every age group they have people in. Check the population and reference rates."
             )
         sr = standardized_ratio(observed, expected).to_frame()
+        rate_cols = _rates(cases, pop, study.standard_population)
+        weekly, observed_previous, totals = _weekly_and_totals(study, window, ids, pop)
 
         steps.start("smoothing", f"empirical-Bayes and {cfg.smoothing.model.upper()} smoothing")
         from ..models import fit_car
@@ -604,6 +619,8 @@ def analyse_period(
         table["observed"] = observed
         table["expected"] = expected
         table["population"] = population
+        for c_, v_ in rate_cols.items():
+            table[c_] = v_
         threshold_differs = not math.isclose(cfg.smoothing.threshold, 1.0)
         _set_estimates(table, sr, eb, car_frame, local, threshold_differs=threshold_differs)
         if cfg.smoothing.kriging:
@@ -614,9 +631,12 @@ def analyse_period(
             rules=rules, adjust=cl.adjust)
         table["flag"] = flags["flag"].to_numpy(bool)
         table["flag_reason"] = flags["flag_reason"].to_numpy(object)
+        settings = period_settings(cfg)
+        archive.check_settings(key, settings, series=cfg.output.series)
         changes = archive.compare(key, table["flag"])
         table["flag_change"] = changes.status.to_numpy(object)
         table["weeks_flagged"] = changes.weeks_flagged.to_numpy(np.int64)
+        table["observed_previous"] = observed_previous
         table.index.name = "area_id"
 
         import geopandas as gpd
@@ -653,6 +673,9 @@ def analyse_period(
                   "previous_period": changes.previous_period,
                   "previous_available": changes.previous_available},
         "suppress_below": cfg.output.suppress_below,
+        "totals": totals,
+        "settings": settings,
+        "series": cfg.output.series,
         "notes": [*getattr(study, "notes", ()), *(f"Local clusters: {n}" for n in local_result.notes)],
         "warnings": run_warnings,
         "timings_seconds": {**steps.timings, "analysis": round(time.perf_counter() - t_start, 3)},
@@ -660,7 +683,8 @@ def analyse_period(
     return PeriodAnalysis(
         config=cfg, period=key, weeks=tuple(window), period_start=start_day, period_end=end_day, areas=areas,
         graph=graph, morans_i=moran, local_clusters=local_result, empirical_bayes=eb, car_fit=car,
-        changes=changes, rules=rules, inputs=tuple(hashes), run_info=run_info, kriging=kriging,
+        changes=changes, rules=rules, inputs=tuple(hashes), run_info=run_info, weekly=weekly,
+        settings=settings, kriging=kriging,
     )
 
 
@@ -728,6 +752,79 @@ def _set_estimates(table: pd.DataFrame, sr, eb, car_frame, local, *, threshold_d
         table["p_above_threshold"] = car_frame["p_above_threshold"].to_numpy(float)
     table["cluster"] = local["cluster"].astype(str).to_numpy()
     table["cluster_p"] = local["p_adjusted"].to_numpy(float)
+
+
+def period_settings(cfg) -> dict:
+    """The settings that make two periods comparable: window, model and flag rule.
+
+    Flags of periods analysed with different settings are not compared
+    ("new", "resolved", weeks in a row); the history archive records these
+    per period and a run whose settings differ stops (or starts a named
+    series, ``[output] series``).
+
+    Examples
+    --------
+    >>> from areamap.config import RunConfig
+    >>> sorted(period_settings(RunConfig())["flags"])
+    ['min_observed', 'min_probability', 'use_clusters']
+    """
+    sm, fl, cl = cfg.smoothing, cfg.flags, cfg.clusters
+    return {
+        "window_weeks": int(cfg.period.window_weeks),
+        "model": {"model": sm.model, "threshold": float(sm.threshold), "covariates": list(sm.covariates),
+                  "reference": cfg.standardization.reference, "graph": cfg.graph.method},
+        "flags": {"min_probability": float(fl.min_probability), "use_clusters": bool(fl.use_clusters),
+                  "min_observed": int(fl.min_observed)},
+        "clusters": {"statistic": cl.statistic, "adjust": cl.adjust, "alpha": float(cl.alpha)},
+    }
+
+
+def _rates(cases: pd.DataFrame, pop: pd.DataFrame, standard) -> dict[str, np.ndarray]:
+    """Crude rate per 100,000 over the window (exact Poisson limits) and, with a standard
+    population, the directly standardized rate (Fay-Feuer limits)."""
+    from ..rates import crude_rate, direct_standardized_rate
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", AreamapWarning)  # zero-population areas were rejected above
+        crude = crude_rate(cases, pop, per=100_000)
+        out = {"rate_per_100k": crude.rate, "rate_low": crude.low, "rate_high": crude.high}
+        if standard is not None:
+            d = direct_standardized_rate(cases, pop, standard, per=100_000)
+            out.update({"std_rate_per_100k": d.rate, "std_rate_low": d.low, "std_rate_high": d.high})
+    return {k: np.asarray(v, dtype=float) for k, v in out.items()}
+
+
+def _weekly_and_totals(study, window: list[str], ids, pop: pd.DataFrame):
+    """Regional weekly series, each district's count in the previous window, and the period totals."""
+    from ..intake import weeks_ending
+
+    by_week = study.weekly_cases().reindex(index=ids, fill_value=0)
+    weeks = list(by_week.columns)
+    end = weeks.index(window[-1])
+    shown = weeks[max(0, end - 103): end + 1]
+    regional_pop = float(np.nansum(pop.to_numpy(float)))
+    cases = by_week[shown].sum(axis=0).astype(np.int64)
+    weekly = pd.DataFrame({"cases": cases, "population": regional_pop,
+                           "rate_per_100k": 1e5 * cases / regional_pop if regional_pop > 0 else np.nan})
+    weekly.index.name = "week"
+    n = len(window)
+    previous = weeks_ending(window[0], n + 1)[:-1]
+    have_previous = all(w in by_week.columns for w in previous)
+    observed_previous = (by_week[previous].sum(axis=1).to_numpy(float) if have_previous
+                         else np.full(len(ids), np.nan))
+    first = weeks.index(window[0])
+    before = [w for w in weeks[max(0, first - 52): first]]
+    current = int(by_week[window].to_numpy().sum())
+    totals = {
+        "current": current, "weeks": n,
+        "previous": int(np.nansum(observed_previous)) if have_previous else None,
+        "previous_weeks": previous if have_previous else [],
+        "baseline_mean": (float(by_week[before].to_numpy().sum()) / len(before) * n) if before else None,
+        "baseline_weeks": len(before),
+        "population": regional_pop,
+        "rate_per_100k": 1e5 * current / regional_pop if regional_pop > 0 else None,
+    }
+    return weekly, observed_previous, totals
 
 
 def _covariates(boundaries, names) -> pd.DataFrame:

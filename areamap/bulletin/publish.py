@@ -30,14 +30,14 @@ from pathlib import Path
 import pandas as pd
 
 from ..archive import FlagChanges, HistoryArchive
-from ..errors import ParameterError
+from ..errors import InputError, ParameterError
 from . import _folder
 from ._folder import MARKER_NAME, OUTPUT_FILES
 from .analysis import Progress, _as_config, _input_files, _Steps, analyse_period
 from .disclosure import public_analysis
 from .render import render_bulletin
 
-__all__ = ["OUTPUT_FILES", "MARKER_NAME", "BulletinResult", "run_bulletin"]
+__all__ = ["OUTPUT_FILES", "MARKER_NAME", "BulletinResult", "period_folder", "point_to_latest", "run_bulletin"]
 
 
 
@@ -123,6 +123,65 @@ class BulletinResult:
         return f"<ul>{lines}</ul>"
 
 
+# ============================================================================ output folders
+def period_folder(root: str | Path, period: str) -> Path:
+    """The folder of one period under an output root: ``root / "2026-W47"``.
+
+    Examples
+    --------
+    >>> period_folder("out", "2026-W47").as_posix()
+    'out/2026-W47'
+    """
+    from ..intake import parse_week
+
+    return Path(root) / parse_week(period)
+
+
+def _period_folders(root: Path) -> list[str]:
+    import re
+
+    if not root.is_dir():
+        return []
+    return sorted(p.name for p in root.iterdir()
+                  if p.is_dir() and re.fullmatch(r"\d{4}-W\d{2}", p.name) and (p / "index.html").is_file())
+
+
+def point_to_latest(root: str | Path) -> Path | None:
+    """Write ``root/latest.html``: a page that forwards to the newest period's bulletin and lists all.
+
+    The newest period is the largest ISO week among the period folders, so
+    re-running an older period does not move the pointer. The file is
+    replaced atomically. Returns its path (None when there is no period yet).
+    """
+    root = Path(root)
+    periods = _period_folders(root)
+    if not periods:
+        return None
+    latest = periods[-1]
+    items = "".join(f'<li><a href="{html.escape(p)}/index.html">{html.escape(p)}</a></li>'
+                    for p in reversed(periods))
+    page = (
+        '<!DOCTYPE html>\n<html lang="en"><head><meta charset="utf-8">'
+        f'<meta http-equiv="refresh" content="0; url={html.escape(latest)}/index.html">'
+        f"<title>Latest bulletin: {html.escape(latest)}</title></head><body>"
+        f'<p>Latest bulletin: <a href="{html.escape(latest)}/index.html">{html.escape(latest)}</a></p>'
+        f"<h1>All periods</h1><ul>{items}</ul></body></html>\n"
+    )
+    target = root / "latest.html"
+    tmp = root / f".latest.html.tmp-{uuid.uuid4().hex[:8]}"
+    tmp.write_text(page, encoding="utf-8")
+    os.replace(tmp, target)
+    return target
+
+
+def _check_root(root: Path) -> None:
+    """The output root of per-period folders must be a folder (or not exist yet); the period folder
+    itself is checked like a plain output folder once the period is known."""
+    if root.exists() and not root.is_dir():
+        raise InputError(f"The output path {root} exists and is a file. Give a folder for the bulletin (--out DIR).")
+
+
+
 # ============================================================================ publishing
 def _publish(analysis, out_dir: Path, *, public: bool, replace_public: bool, started: float,
              steps: _Steps, inputs: list, today=None) -> tuple[dict, list[str]]:
@@ -134,7 +193,7 @@ def _publish(analysis, out_dir: Path, *, public: bool, replace_public: bool, sta
     from .. import __version__
 
     cfg = analysis.config
-    archive = HistoryArchive(cfg.output.archive)
+    archive = HistoryArchive(cfg.output.archive_path)
     notes: list[str] = []
     with _folder.publish_lock(out_dir, timeout=archive.timeout):
         notes += _recover(out_dir, archive)
@@ -157,7 +216,8 @@ def _publish(analysis, out_dir: Path, *, public: bool, replace_public: bool, sta
             table = analysis.to_frame()
             archive.stage_period(analysis.period, table, run_id=run_id, out_dir=out_dir,
                                  period_start=analysis.period_start, period_end=analysis.period_end,
-                                 window_weeks=analysis.window_weeks, tool_version=__version__)
+                                 window_weeks=analysis.window_weeks, tool_version=__version__,
+                                 settings=analysis.settings, series=cfg.output.series)
             had_previous = _folder.swap_in(tmp, out_dir, previous)
             swapped = True
             archive.promote_period(run_id)
@@ -225,9 +285,12 @@ def run_bulletin(
         ISO week ending the analysed window (``"2026-W47"``) or ``"latest"``;
         default ``[period] week`` of the configuration.
     out : str or Path, optional
-        Output folder; default ``bulletin`` beside the configuration file. An
-        existing folder is replaced only when it holds nothing but bulletin
-        outputs.
+        Output folder; default ``bulletin`` beside the configuration file.
+        With ``[output] per_period = true`` (the default) each period goes
+        into its own subfolder (``out/2026-W47/``) and ``out/latest.html``
+        points to the newest period; otherwise the files go straight into
+        ``out``. An existing (period) folder is replaced only when areamap
+        wrote it (see :mod:`areamap.bulletin._folder`).
     public : bool, default=False
         Suppress small counts (1 to ``suppress_below - 1``) in areas.csv and
         areas.gpkg too (the HTML always suppresses them) and withhold the
@@ -273,19 +336,30 @@ def run_bulletin(
     if not isinstance(replace_public, bool):
         raise ParameterError("The 'replace_public' parameter of run_bulletin must be True or False. "
                              f"Got {replace_public!r} instead.")
-    out_given = Path(out) if out is not None else cfg.base_dir / "bulletin"
-    out_dir, out_notes = _folder.resolve_out(out_given.expanduser().absolute())
-    inputs = [*_input_files(cfg), ("history archive", Path(cfg.output.archive))]
+    root = Path(out) if out is not None else cfg.base_dir / "bulletin"
+    root, out_notes = _folder.resolve_out(root.expanduser().absolute())
+    inputs = [*_input_files(cfg), ("history archive", Path(cfg.output.archive_path))]
+    per_period = cfg.output.per_period
     # refuse an unusable folder before the (long) analysis; checked again under the publishing lock
-    _folder.check_replaceable(out_dir, inputs, public=public, replace_public=replace_public)
+    if per_period:
+        _check_root(root)
+    else:
+        _folder.check_replaceable(root, inputs, public=public, replace_public=replace_public)
 
     analysis = analyse_period(cfg, period=period, progress=progress, today=today)
+    out_dir = period_folder(root, analysis.period) if per_period else root
+    if per_period:
+        out_dir, period_notes = _folder.resolve_out(out_dir)
+        out_notes += period_notes
+        _folder.check_replaceable(out_dir, inputs, public=public, replace_public=replace_public)
     steps = _Steps(progress, 9)
     steps.count = 7
     steps.start("outputs", "writing index.html, areas.csv, areas.gpkg, run.json")
     _parent_for(out_dir)
     run_info, recovered = _publish(analysis, out_dir, public=public, replace_public=replace_public,
                                    started=t_start, steps=steps, inputs=inputs, today=today)
+    if per_period:
+        point_to_latest(root)
     steps.stop()
     run_info["timings_seconds"]["archive"] = steps.timings.get("archive")
     run_info["publishing_notes"] = [*out_notes, *recovered]

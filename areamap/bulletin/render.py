@@ -9,35 +9,27 @@ the HTML (and in the tables with ``public=True``).
 
 from __future__ import annotations
 
-import base64
-import io
 import json
 import time
-import warnings
 from pathlib import Path
 
+import markupsafe
 import numpy as np
 import pandas as pd
 
-from ..archive import FlagChanges
 from .analysis import (
     _ADJUST_LABEL,
     AREA_COLUMNS,
     KRIGING_COLUMNS,
+    STANDARDIZED_RATE_COLUMNS,
     FlagRules,
     PeriodAnalysis,
     _fmt_p,
     _fmt_prob,
     _jsonable,
+    suppress_counts,
 )
-from .disclosure import (
-    WITHHELD,
-    neutralise_formulas,
-    public_run_info,
-    public_table,
-    short_name,
-    suppressed_mask,
-)
+from .disclosure import neutralise_formulas, public_run_info, public_table
 
 __all__ = ["render_bulletin"]
 
@@ -64,26 +56,38 @@ def render_bulletin(analysis: PeriodAnalysis, folder: str | Path, *, public: boo
     -------
     dict
         The run.json content written.
+
+    Notes
+    -----
+    The page answers first: headline and totals, the flagged districts with
+    a locator map, the weekly curve, the explorable map, then the maps and
+    plots, the files of the run, methods, cautions and provenance. The
+    sections are rendered in the order of :data:`SECTIONS`; each is a
+    template under ``templates/sections/``. Texts come from the string
+    catalogue (:mod:`~areamap.bulletin.wording`) for ``[output] audience``.
     """
+    from .wording import load_wording
+
     folder = Path(folder)
     cfg = analysis.config
+    out = cfg.output
+    words = load_wording(getattr(out, "audience", "specialist"), date_format=getattr(out, "date_format", "%Y-%m-%d"),
+                         strings_file=getattr(out, "strings_file", None))
     info = dict(run_info if run_info is not None else analysis.run_info)
     if public:
         info = public_run_info(info)
     info["public"] = public
+    info["audience"] = words.audience
     timings = info["timings_seconds"] = dict(info.get("timings_seconds", {}))
     t0 = time.perf_counter()
-    figures, figure_notes = _figures(analysis.areas, analysis.graph, analysis.local_clusters.to_frame()
-                                     .reindex(analysis.areas.index), cfg, analysis.period,
-                                     kriging=analysis.kriging, suppress_below=cfg.output.suppress_below)
+    context = _page_context(analysis, words, info)
     timings["figures"] = round(time.perf_counter() - t0, 4)
     if started is not None:
         timings["total"] = round(time.perf_counter() - started, 3)
+    context["provenance"]["duration"] = f"{timings.get('total', float('nan')):.1f} s"
     _write_tables(analysis.areas, folder, public=public, suppress_below=cfg.output.suppress_below,
                   threshold_differs=analysis.threshold_differs)
-    # the page always suppresses small counts, so it shows the public (rounded) region-wide statistics
-    page = _render_html(cfg, analysis.areas, analysis.changes, analysis.morans_i, analysis.rules, figures,
-                        figure_notes, info if public else public_run_info(info), list(analysis.inputs))
+    page = _environment().get_template("bulletin.html").render(**context)
     (folder / "index.html").write_text(page, encoding="utf-8")
     _write_json(folder / "run.json", info)
     return info
@@ -106,23 +110,6 @@ def _environment():
     )
 
 
-def _figure_uri(fig, *, dpi: int = 110) -> tuple[str, int, int]:
-    """PNG data URI of a matplotlib figure (closed afterwards), with its pixel size."""
-    import matplotlib.pyplot as plt
-
-    buf = io.BytesIO()
-    try:
-        fig.savefig(buf, format="png", dpi=dpi, bbox_inches="tight", facecolor="white",
-                    metadata={"Software": None})
-    finally:
-        plt.close(fig)
-    data = buf.getvalue()
-    # PNG IHDR: width and height are big-endian uint32 at bytes 16-24 (PNG spec, section 11.2.2)
-    width = int.from_bytes(data[16:20], "big")
-    height = int.from_bytes(data[20:24], "big")
-    return "data:image/png;base64," + base64.b64encode(data).decode("ascii"), width, height
-
-
 def _fmt(x: float, digits: int = 2) -> str:
     return "n/a" if x is None or not np.isfinite(x) else f"{x:.{digits}f}"
 
@@ -136,9 +123,16 @@ def _write_tables(areas, folder: Path, *, public: bool, suppress_below: int, thr
     if all(c in areas.columns for c in KRIGING_COLUMNS):
         at = cols.index("p_above_threshold" if threshold_differs else "p_above_1") + 1
         cols[at:at] = list(KRIGING_COLUMNS)
+    if STANDARDIZED_RATE_COLUMNS[0] in areas.columns:
+        at = cols.index("rate_high") + 1
+        cols[at:at] = list(STANDARDIZED_RATE_COLUMNS)
     frame = areas[cols + ["geometry"]].copy()
     if public:
+        prev = frame["observed_previous"] if "observed_previous" in frame.columns else None
         frame = public_table(frame, suppress_below=suppress_below)
+        if prev is not None and suppress_below > 1:
+            shown = suppress_counts(prev.fillna(0).astype(np.int64), threshold=suppress_below).to_numpy(object)
+            frame["observed_previous"] = np.where(prev.isna(), None, shown)
     plain = pd.DataFrame(frame.drop(columns="geometry")).reset_index()
     plain["flag"] = plain["flag"].map({True: "true", False: "false"})
     # text that a spreadsheet would run as a formula is neutralised in the CSV (not in the GeoPackage)
@@ -148,7 +142,22 @@ def _write_tables(areas, folder: Path, *, public: bool, suppress_below: int, thr
     gdf.to_file(folder / "areas.gpkg", layer="areas", driver="GPKG")
 
 
+
 # ============================================================================ html page
+#: The sections of the page, in reading order: (id, template under templates/sections/). To add a
+#: section, write its template (it sees the whole page context) and insert its entry here.
+SECTIONS: tuple[tuple[str, str], ...] = (
+    ("headline", "sections/headline.html"),
+    ("flagged", "sections/flagged.html"),
+    ("trend", "sections/trend.html"),
+    ("explore", "sections/explore.html"),
+    ("maps", "sections/maps.html"),
+    ("files", "sections/files.html"),
+    ("methods", "sections/methods.html"),
+    ("cautions", "sections/cautions.html"),
+    ("provenance", "sections/provenance.html"),
+)
+
 _REFERENCES = (
     "Anselin L (1995). Local indicators of spatial association—LISA. Geographical Analysis 27(2):93–115.",
     "Assunção RM, Reis EA (1999). A new proposal to adjust Moran's I for population density. "
@@ -161,6 +170,9 @@ _REFERENCES = (
     "Cohort Studies. IARC Scientific Publications No. 82, Lyon (indirect standardization, exact Poisson limits).",
     "Clayton D, Kaldor J (1987). Empirical Bayes estimates of age-standardized relative risks for use in "
     "disease mapping. Biometrics 43(3):671–681.",
+    "Fay MP, Feuer EJ (1997). Confidence intervals for directly standardized rates: a method based on the gamma "
+    "distribution. Statistics in Medicine 16(7):791–801.",
+    "Garwood F (1936). Fiducial limits for the Poisson distribution. Biometrika 28(3/4):437–442.",
     "Leroux BG, Lei X, Breslow N (2000). Estimation of disease rates in small areas: a new mixed model for "
     "spatial dependence. In: Statistical Models in Epidemiology, the Environment, and Clinical Trials, 179–191.",
     "Moran PAP (1950). Notes on continuous stochastic phenomena. Biometrika 37(1/2):17–23.",
@@ -185,285 +197,269 @@ _KRIGING_REFERENCES = (
     "heterogeneous observation efforts. Ecological Modelling 193:615–628.",
 )
 
-_CAUTIONS = (
-    "This bulletin is an analytic aid, not a public-health directive. Decisions about any response rest with "
-    "the responsible health authority and follow local rules and procedures.",
-    "Small numbers: a district with few expected cases can show a very high or very low ratio by chance alone. "
-    "Read the smoothed relative risks and their intervals rather than the raw ratios, and treat a single "
-    "week's flag with care.",
-    "Ecological fallacy: results describe districts as a whole. They do not say anything about the risk of any "
-    "individual living there, and associations between districts need not hold for people.",
-    "Interval meaning: a 95% interval (or credible interval) and a posterior probability such as P(RR>1) express "
-    "uncertainty under the model's assumptions; they are not certainties. With many districts, some will "
-    "exceed any threshold by chance.",
-    "Flags follow an explicit, configurable rule and are a prompt to look more closely (data quality, reporting "
-    "delays, known outbreaks, population changes), not a finding in themselves.",
-)
+
+def _cautions(words, suppress_below: int) -> list[str]:
+    hidden = (words("caution_hidden", last=suppress_below - 1) if suppress_below > 1
+              else words("caution_hidden_off"))
+    return [words(k) for k in ("caution_directive", "caution_small_numbers", "caution_ecological",
+                               "caution_intervals", "caution_flags")] + [words("caution_disclosure", hidden=hidden)]
 
 
-def _cautions(suppress_below: int) -> tuple[str, ...]:
-    if suppress_below > 1:
-        text = (f"Disclosure: counts from 1 to {suppress_below - 1} are hidden in this page; for those districts "
-                "the ratios, model estimates, expected counts and cluster results are withheld too, the raw-ratio "
-                "map and the funnel plot leave them out, and the totals exclude them, so that a small count "
-                "cannot be recovered by subtraction or by refitting the model. The smoothed-risk maps still show "
-                "their risk class. Check local rules before publishing.")
-    else:
-        text = "Disclosure: no counts are hidden (suppression is switched off). Check local rules before publishing."
-    return (*_CAUTIONS, text)
-
-
-def _moran_sentence(statistic: float, expected: float, p: float) -> str:
+def _moran_sentence(words, statistic: float, expected: float, p: float) -> str:
     if not np.isfinite(p):
-        return "No permutation test was run."
+        return words("moran_untested")
     if p < 0.05 and statistic > expected:
-        return ("Neighbouring districts tend to have similar ratios (positive spatial autocorrelation): "
-                "cases are not spread independently over the map.")
+        return words("moran_positive")
     if p < 0.05:
-        return "Neighbouring districts tend to differ from each other (negative spatial autocorrelation)."
-    return ("No clear evidence that neighbouring districts resemble each other more than chance alone would give "
-            "(p >= 0.05); this does not rule out local clusters.")
+        return words("moran_negative")
+    return words("moran_none")
 
 
-def _methods(cfg, rules: FlagRules, n_window: int) -> list[str]:
+def _methods(words, cfg, rules: FlagRules, n_window: int, model: dict, has_std: bool) -> list[str]:
     st = cfg.standardization
-    model = {"bym2": "BYM2 (Riebler et al. 2016), a reparameterised Besag–York–Mollié model whose mixing "
-                     "parameter is the fraction of the variation that is spatially structured",
-             "leroux": "Leroux et al. (2000) conditional autoregressive model",
-             "icar": "intrinsic conditional autoregressive (Besag et al. 1991) model"}[cfg.smoothing.model]
-    ref = ("the age-specific rates of the whole region over the same weeks (internal reference)"
-           if st.reference == "internal" else
-           "the external reference rates of the configuration, multiplied by the number of weeks in the window")
-    stat = ("local Moran's I (Anselin 1995)" if cfg.clusters.statistic == "local_moran"
-            else "the Getis–Ord Gi* statistic (Ord & Getis 1995)")
-    adj = {"fdr": "the Benjamini–Hochberg false-discovery-rate procedure (Benjamini & Hochberg 1995)",
-           "bonferroni": "a Bonferroni correction", "none": "no multiple-testing adjustment"}[cfg.clusters.adjust]
-    return [
-        f"Cases are summed over the analysed window ({n_window} week{'s' if n_window != 1 else ''}). Expected "
-        f"counts come from indirect standardization: each district's population by age group times {ref}. "
-        "The standardized incidence ratio (SIR) is observed / expected, with exact Poisson 95% confidence "
-        "limits (Breslow & Day 1987).",
-        "Empirical-Bayes ratios (eb_rr) shrink each SIR towards the regional mean with a Poisson–gamma model "
-        "whose prior is estimated from all districts (Clayton & Kaldor 1987): the fewer expected cases, the "
-        "stronger the shrinkage.",
-        f"Smoothed relative risks (rr) are posterior means from the {model}, fitted to the observed counts with "
-        "the expected counts as offsets and penalised-complexity priors on the variance and mixing parameters. "
-        "The map of uncertainty shows the posterior probability that a district's relative risk exceeds 1.",
-        "Global spatial autocorrelation is measured by Moran's I (Moran 1950) of the empirical-Bayes "
-        "standardized ratios of Assunção & Reis (1999), with expected counts as denominators so that age "
-        f"structure is taken into account; its p-value comes from {cfg.clusters.permutations} random "
-        f"permutations (seed {cfg.seed}).",
-        f"Local clusters are found with {stat} on the same standardized ratios, with conditional-permutation "
-        f"p-values ({cfg.clusters.permutations} permutations) adjusted by {adj} at level "
-        f"{cfg.clusters.alpha:g}. Districts without neighbours are labelled 'no neighbours'.",
-        f"Flag rule: {rules.describe(adjust=cfg.clusters.adjust, alpha=cfg.clusters.alpha)} The probability "
-        "cut-off follows Richardson et al. (2004). Each flagged district's reason lists the rules it met; "
-        "'new', 'continuing' and 'resolved' compare with the previous week in the history archive, and "
-        "'periods flagged' counts consecutive flagged weeks.",
-        *([] if not cfg.smoothing.kriging else [
-            "Kriged relative risks (kriged_rr) come from area-to-area Poisson kriging (Kyriakidis 2004; Goovaerts "
-            "2006): a population-weighted semivariogram of the ratios, corrected for Poisson noise (Monestiez et "
-            "al. 2006), is fitted by least squares; each district's estimate is a weighted mean of its own ratio "
-            f"and those of its {cfg.smoothing.kriging_neighbours} nearest districts, with covariances averaged "
-            "over points inside the districts and the Poisson variance of each ratio added to its own term. "
-            "Intervals are approximate (normal, from the kriging variance). They are shown beside, not instead "
-            "of, the model-based estimates."]),
-        "The funnel plot (Spiegelhalter 2005) shows each district's SIR against its expected count with "
-        "95% and 99.8% control limits around 1; points outside the funnel are more extreme than chance "
-        "variation would usually give.",
+    cl = cfg.clusters
+    paras = [
+        words("method_rates_sir", n_window=n_window, plural="s" if n_window != 1 else "",
+              reference=words(f"method_reference_{st.reference}")),
+        words("rates_method", std=words("rates_method_std") if has_std else ""),
+        words("totals_method"),
+        words("method_eb"),
+        words("method_car", model=words(f"method_model_{cfg.smoothing.model}")),
+        words("method_moran", perm=cl.permutations, seed=cfg.seed),
+        words("method_local", stat=words(f"method_stat_{cl.statistic}"), perm=cl.permutations,
+              adjust=words(f"method_adjust_{cl.adjust}"), alpha=f"{cl.alpha:g}"),
+        words("method_flags", rule=rules.describe(adjust=cl.adjust, alpha=cl.alpha)),
+        *([words("method_kriging", k=cfg.smoothing.kriging_neighbours)] if getattr(cfg.smoothing, "kriging", False)
+          else []),
+        words("method_funnel"),
     ]
-
-
-def _model_sentence(model: dict) -> str:
-    """This period's fitted hyperparameters and fit criteria in one sentence."""
     parts = []
     for name, row in (model.get("hyperparameters") or {}).items():
         if {"mean", "q025", "q975"} <= set(row):
             parts.append(f"{name} {_fmt(row['mean'])} (95% CrI {_fmt(row['q025'])}–{_fmt(row['q975'])})")
-    text = f"This period's {str(model.get('model', '')).upper()} fit: " + ("; ".join(parts) if parts else "—")
+    text = words("method_fit", model=str(model.get("model", "")).upper(), parts="; ".join(parts) if parts else "—")
     crit = [f"{k.upper()} {model[k]:.1f}" for k in ("dic", "waic") if isinstance(model.get(k), float)]
     if crit:
         text += "; " + ", ".join(crit) + " (smaller is better when comparing models on the same data)"
-    return text + "."
+    paras.append(text + ".")
+    return paras
 
 
-def _row_display(row, suppress_below: int) -> dict:
-    hide = 1 <= row.observed < suppress_below if suppress_below > 1 else False
-    return {
-        "area_id": str(row.Index), "area_name": str(row.area_name),
-        "observed": f"<{suppress_below}" if hide else str(int(row.observed)),
-        "expected": WITHHELD if hide else _fmt(row.expected, 1),
-        "sir": WITHHELD if hide else _fmt(row.sir),
-        "sir_ci": "" if hide else f"({_fmt(row.sir_low)}–{_fmt(row.sir_high)})",
-        "rr": WITHHELD if hide else _fmt(row.rr), "rr_ci": "" if hide else f"({_fmt(row.rr_low)}–{_fmt(row.rr_high)})",
-        "p_above_1": (WITHHELD if hide else
-                      _fmt_prob(row.p_above_1).lstrip("=") if np.isfinite(row.p_above_1) else "n/a"),
-        "cluster": WITHHELD if hide else str(row.cluster), "change": str(row.flag_change),
-        "weeks_flagged": str(int(row.weeks_flagged)), "flag_reason": WITHHELD if hide else str(row.flag_reason),
-    }
+def _p_relation(p: float) -> str:
+    """'= 0.012' or '< 0.001' (a p-value with its relation sign)."""
+    text = _fmt_p(p)
+    return f"{text[0]} {text[1:]}" if text[:1] in "<>" else f"= {text}"
 
 
-def _render_html(cfg, areas, changes: FlagChanges, moran, rules: FlagRules, figures, figure_notes,
-                 run_info: dict, hashes: list[dict]) -> str:
+def _pct(p: float) -> str:
+    """A probability as a whole percentage, never 100% below 1 nor 0% above 0."""
+    if not np.isfinite(p):
+        return "n/a"
+    v = 100 * p
+    if 99 < v < 100:
+        return ">99%"
+    if 0 < v < 1:
+        return "<1%"
+    return f"{v:.0f}%"
+
+
+def _reason(row, words, rules: FlagRules, adjust: str, p_exceed: float) -> str:
+    """The flag reason from the numbers, in the audience's words."""
+    met = []
+    if np.isfinite(p_exceed) and p_exceed >= rules.min_probability:
+        met.append(words("reason_probability", t=f"{rules.threshold:g}", p=_fmt_prob(p_exceed).lstrip("="),
+                         cut=f"{rules.min_probability:g}", cut_pct=_pct(rules.min_probability), p_pct=_pct(p_exceed)))
+    if rules.use_clusters and str(row.cluster) == "High-High":
+        met.append(words("reason_cluster", adjust=_ADJUST_LABEL[adjust], q=_p_relation(row.cluster_p)))
+    return "; ".join(met) if met else str(row.flag_reason)
+
+
+def _count_text(x, suppress_below: int) -> str:
+    if x is None or not np.isfinite(x):
+        return "n/a"
+    x = int(x)
+    return f"<{suppress_below}" if suppress_below > 1 and 1 <= x < suppress_below else str(x)
+
+
+def _rate_text(rate, low, high, hidden: bool, words, digits: int = 1) -> tuple[str, str]:
+    if hidden:
+        return words("withheld"), ""
+    return _fmt(rate, digits), f"({_fmt(low, digits)}–{_fmt(high, digits)})"
+
+
+def _area_rows(table: pd.DataFrame, words, rules: FlagRules, adjust: str, suppress_below: int,
+               threshold_differs: bool) -> pd.DataFrame:
+    """Display texts per district (suppressed where the page suppresses), one column per field."""
+    cluster_names = words.cluster_names()
+    status = {"new": words("status_new"), "continuing": words("status_continuing"),
+              "resolved": words("status_resolved"), "not flagged": words("status_not_flagged")}
+    rows = []
+    for r in table.itertuples():
+        hide = suppress_below > 1 and 1 <= r.observed < suppress_below
+        rate, rate_ci = _rate_text(r.rate_per_100k, r.rate_low, r.rate_high, hide, words)
+        p_exceed = r.p_above_threshold if threshold_differs else r.p_above_1
+        prev = r.observed_previous
+        if prev is None or not np.isfinite(prev):
+            change = words("change_unknown")
+        else:
+            diff = int(r.observed) - int(prev)
+            change = words("change_text", sign="+" if diff > 0 else ("−" if diff < 0 else "±"), diff=abs(diff),
+                           previous=_count_text(prev, suppress_below))
+            if hide or (suppress_below > 1 and 1 <= prev < suppress_below):
+                change = words("withheld")
+        entry = {
+            "area_id": str(r.Index), "area_name": str(r.area_name),
+            "observed": _count_text(r.observed, suppress_below),
+            "expected": words("withheld") if hide else _fmt(r.expected, 1),
+            "rate": rate, "rate_ci": rate_ci,
+            "sir": words("withheld") if hide else _fmt(r.sir),
+            "sir_ci": "" if hide else f"({_fmt(r.sir_low)}–{_fmt(r.sir_high)})",
+            "rr": words("withheld") if hide else _fmt(r.rr),
+            "rr_ci": "" if hide else f"({_fmt(r.rr_low)}–{_fmt(r.rr_high)})",
+            "prob": words("withheld") if hide else ((_pct(r.p_above_1) if words.public
+                                                     else _fmt_prob(r.p_above_1).lstrip("="))
+                                                    if np.isfinite(r.p_above_1) else "n/a"),
+            "cluster": words("withheld") if hide else cluster_names.get(str(r.cluster), str(r.cluster)),
+            "status": status.get(str(r.flag_change), str(r.flag_change)),
+            "status_key": str(r.flag_change),
+            "weeks_flagged": str(int(r.weeks_flagged)), "change": change,
+            "reason": (words("withheld") if hide else _reason(r, words, rules, adjust, p_exceed)) if r.flag else "",
+            "flag": words("status_" + ("new" if r.flag_change == "new" else "continuing")) if r.flag else "",
+        }
+        if "std_rate_per_100k" in table.columns:
+            entry["std_rate"], entry["std_rate_ci"] = _rate_text(r.std_rate_per_100k, r.std_rate_low,
+                                                                 r.std_rate_high, hide, words)
+        rows.append(entry)
+    return pd.DataFrame(rows, index=table.index)
+
+
+def _explorable(analysis, display: pd.DataFrame, words) -> str:
+    """The explorable map fragment (inline SVG + plain script); fill = smoothed relative-risk class."""
+    from matplotlib.colors import to_hex
+
+    from .._classify import class_colours, classify
+    from ..explore import explorable_map
+
+    table = analysis.to_frame()
+    cls = classify(table["rr"].to_numpy(float), scheme="relative_risk")
+    cols = [to_hex(c) for c in class_colours(cls, "diverging", centre=1.0)]
+    fill = [cols[i] if i >= 0 else "#ffffff" for i in cls.class_index]
+    legend = [(c, lab) for c, lab in zip(cols, cls.labels)]
+    text = pd.DataFrame({
+        "observed": display["observed"], "expected": display["expected"],
+        "rate": (display["rate"] + " " + display["rate_ci"]).str.strip(),
+        "sir": (display["sir"] + " " + display["sir_ci"]).str.strip(),
+        "rr": display["rr"] + " " + display["rr_ci"], "prob": display["prob"],
+        "cluster": display["cluster"], "flag": display["flag"].where(display["flag"] != "", "—"),
+    }, index=table.index)
+    sort_values = pd.DataFrame({
+        "observed": table["observed"].astype(float), "expected": table["expected"],
+        "rate": table["rate_per_100k"], "sir": table["sir"], "rr": table["rr"], "prob": table["p_above_1"],
+        "cluster": display["cluster"], "flag": display["flag"],
+    }, index=table.index)
+    hidden = display["observed"].str.startswith("<")
+    sort_values.loc[hidden, ["observed", "rate", "sir"]] = np.nan
+    columns = [("observed", words("col_observed")), ("expected", words("col_expected")),
+               ("rate", words("col_rate")), ("sir", words("col_sir")), ("rr", words("col_rr")),
+               ("prob", words("col_prob")), ("cluster", words("col_cluster")), ("flag", words("col_flag"))]
+    flagged = table["flag"].to_numpy(bool)
+    top = table[flagged].sort_values(["p_above_1", "rr"], ascending=False, kind="stable")
+    first = top.index[0] if len(top) else None  # the district of key 1 in the flagged table
+    return explorable_map(
+        analysis.areas, columns, text=text, sort_values=sort_values, fill=fill, element_id="explore",
+        title=words("explore_title"), hint=words("explore_hint"), table_summary=words("explore_table"),
+        name_label=words("col_district"), legend=legend, marked=flagged, initial=first)
+
+
+def _totals(words, totals: dict) -> dict:
+    def change(now: float, before: float) -> str:
+        if before is None:
+            return ""
+        if before == 0:
+            return "+∞" if now > 0 else "±0%"
+        pct = 100 * (now - before) / before
+        return f"{'+' if pct > 0 else ('−' if pct < 0 else '±')}{abs(pct):.0f}%"
+
+    cur = totals["current"]
+    lines = [words("totals_current", current=f"{cur:,}",
+                   rate=_fmt(totals.get("rate_per_100k") if totals.get("rate_per_100k") is not None else np.nan, 1))]
+    if totals.get("previous") is not None:
+        prev_weeks = totals["previous_weeks"]
+        span = prev_weeks[0] if len(prev_weeks) == 1 else f"{prev_weeks[0]} – {prev_weeks[-1]}"
+        lines.append(words("totals_previous", weeks=span, previous=f"{totals['previous']:,}",
+                           change=change(cur, totals["previous"])))
+    else:
+        lines.append(words("totals_previous_missing"))
+    if totals.get("baseline_mean") is not None:
+        lines.append(words("totals_baseline", n=totals["baseline_weeks"], mean=f"{totals['baseline_mean']:,.1f}",
+                           change=change(cur, totals["baseline_mean"])))
+    return {"lines": lines, **totals}
+
+
+def _page_context(analysis: PeriodAnalysis, words, run_info: dict) -> dict:
+    """Everything the page template needs (figures drawn here)."""
+    from .page_figures import bulletin_figures, locator_figure, trend_figure
+
+    cfg = analysis.config
+    changes, moran, rules = analysis.changes, analysis.morans_i, analysis.rules
     counts = changes.counts
-    table = pd.DataFrame(areas.drop(columns="geometry"))
-    flagged = table[table["flag"]].sort_values(["p_above_1", "rr"], ascending=False, kind="stable")
-    resolved = table[table["flag_change"] == "resolved"]
+    table = analysis.to_frame()
     sb = cfg.output.suppress_below
-    total_sec = run_info["timings_seconds"].get("total", float("nan"))
-    context = {
+    display = _area_rows(table, words, rules, cfg.clusters.adjust, sb, analysis.threshold_differs)
+    flagged = table[table["flag"]].sort_values(["p_above_1", "rr"], ascending=False, kind="stable")
+    flagged_rows = [{**display.loc[i].to_dict(), "key": str(k + 1)} for k, i in enumerate(flagged.index)]
+    resolved = table[table["flag_change"] == "resolved"]
+    figures, figure_notes = bulletin_figures(analysis, words)
+    locator, _ = locator_figure(analysis, flagged, words)
+    trend = trend_figure(analysis, words)
+    period = run_info["period"]
+    n_window = period["window_weeks"]
+    window = words("window_rolling", n=n_window) if n_window > 1 else words("window_one")
+    n_flagged = counts["total"]
+    cluster_rule = words.cluster_rule() if rules.use_clusters else ""
+    per_period = getattr(cfg.output, "per_period", False)
+    return {
+        "t": words, "lang": "en",
+        "sections": [{"id": sid, "template": tpl} for sid, tpl in SECTIONS],
         "title": cfg.title, "region": cfg.region, "data_source": cfg.data_source,
-        "period": {"key": run_info["period"]["key"], "start": run_info["period"]["start"],
-                   "end": run_info["period"]["end"], "window_weeks": run_info["period"]["window_weeks"]},
+        "period": {"key": period["key"], "start": words.date(period["start"]), "end": words.date(period["end"]),
+                   "window_weeks": n_window,
+                   "line": words("period_line", key=period["key"], start=words.date(period["start"]),
+                                 end=words.date(period["end"]), window=window)},
         "headline": {
-            "n_flagged": counts["total"], "n_areas": len(table),
+            "flagged_text": words("headline_flagged" if len(table) != 1 else "headline_flagged_one",
+                                  n=n_flagged, total=len(table)),
+            "n_flagged": n_flagged, "n_areas": len(table),
             "n_new": counts["new"], "n_continuing": counts["continuing"], "n_resolved": counts["resolved"],
             "previous_period": changes.previous_period, "previous_available": changes.previous_available,
-            "moran_i": f"{moran.statistic:.3f}", "moran_expected": f"{moran.expected:.3f}",
-            "moran_p": _fmt_p(moran.p_permutation), "moran_permutations": moran.permutations,
-            "moran_sentence": _moran_sentence(moran.statistic, moran.expected, moran.p_permutation),
-            **_totals(table, sb),
+            "moran_text": words("moran_line", i=f"{moran.statistic:.3f}", e=f"{moran.expected:.3f}",
+                                p=_p_relation(moran.p_permutation), perm=moran.permutations,
+                                sentence=_moran_sentence(words, moran.statistic, moran.expected,
+                                                         moran.p_permutation)),
         },
-        "flag_rule_text": rules.describe(adjust=cfg.clusters.adjust, alpha=cfg.clusters.alpha),
+        "totals": _totals(words, run_info.get("totals") or analysis.run_info.get("totals", {})),
+        "flag_rule_text": words("flag_rule", rule=rules.describe(adjust=cfg.clusters.adjust, alpha=cfg.clusters.alpha),
+                                cut_pct=_pct(rules.min_probability), cluster=cluster_rule),
+        "flagged_rows": flagged_rows,
+        "has_std_rate": "std_rate_per_100k" in table.columns,
+        "locator": locator,
+        "trend": trend,
+        "explore_html": markupsafe.Markup(_explorable(analysis, display, words)),
         "figures": figures, "figure_notes": figure_notes,
-        "flagged_rows": [_row_display(r, sb) for r in flagged.itertuples()],
         "resolved_rows": [{"area_id": str(i), "area_name": str(n)} for i, n in resolved["area_name"].items()],
         "suppress_below": sb,
-        "methods": [*_methods(cfg, rules, run_info["period"]["window_weeks"]), _model_sentence(run_info["model"])],
-        "references": _REFERENCES + (_KRIGING_REFERENCES if cfg.smoothing.kriging else ()),
-        "cautions": _cautions(sb),
+        "files": [{"href": "areas.csv", "text": words("file_csv")}, {"href": "areas.gpkg", "text": words("file_gpkg")},
+                  {"href": "run.json", "text": words("file_json")}],
+        "latest_href": "../latest.html" if per_period else None,
+        "methods": _methods(words, cfg, rules, n_window, run_info["model"], "std_rate_per_100k" in table.columns),
+        "references": _REFERENCES + (_KRIGING_REFERENCES if getattr(cfg.smoothing, "kriging", False) else ()),
+        "cautions": _cautions(words, sb),
         "provenance": {
             "version": run_info["version"], "run_time": run_info["run_time"].replace("+00:00", " UTC"),
-            "duration": f"{total_sec:.1f} s", "seed": cfg.seed,
+            "duration": "", "seed": cfg.seed,
             "config": str(cfg.path.name) if cfg.path is not None else "(built in code)",
-            "inputs": hashes,
+            "series": getattr(cfg.output, "series", "") or "",
+            "inputs": list(analysis.inputs),
         },
         "run_notes": [*run_info.get("notes", []), *run_info.get("warnings", [])],
     }
-    return _environment().get_template("bulletin.html").render(**context)
-
-
-def _totals(table: pd.DataFrame, suppress_below: int) -> dict:
-    """Headline totals without the suppressed districts (a full total minus the shown counts would give
-    the sum of the hidden ones)."""
-    hide = suppressed_mask(table["observed"], suppress_below)
-    shown = table.loc[~hide]
-    note = (f" (not counting the {int(hide.sum())} district(s) with fewer than {suppress_below} cases)"
-            if hide.any() else "")
-    return {"total_observed": f"{int(shown['observed'].sum()):,}",
-            "total_expected": f"{shown['expected'].sum():,.1f}" + note}
-
-
-# ============================================================================ figures
-def _plain(text: str) -> str:
-    """User text for matplotlib: '$' would start mathtext, so escape it (text is drawn literally)."""
-    return str(text).replace("$", r"\$")
-
-
-def _kriging_figures(add, gdf, kriging, cfg, period_text: str, source) -> None:
-    """CAR and Poisson-kriged relative risks side by side, and the risk semivariogram."""
-    import matplotlib.pyplot as plt
-
-    from .. import maps
-    from ..geostatistics import RiskVariogram, variogram_plot
-
-    car = cfg.smoothing.model.upper()
-    fig = maps.raw_beside_smoothed(gdf, "rr", "kriged_rr", titles=(f"{car} relative risk",
-                                                                   "Poisson-kriged relative risk"),
-                                   period=period_text, source=source)
-    add("kriging", fig, "Two smoothers side by side",
-        f"Left: relative risk smoothed by the {car} model (neighbours from the graph). Right: relative risk "
-        "from area-to-area Poisson kriging (weights from distance, district shape and population through the "
-        "risk semivariogram), same classes and colours. Where the two maps disagree, the smoothed picture "
-        "depends on the choice of method and neighbours; read such districts with extra care. Flags use the "
-        f"{car} estimates only.",
-        f"Two maps side by side: {car} relative risks and Poisson-kriged relative risks per district.")
-    if isinstance(kriging.variogram, RiskVariogram):
-        fig, ax = plt.subplots(figsize=(7.0, 4.5), layout="constrained")
-        variogram_plot(kriging.variogram, ax=ax)
-        add("semivariogram", fig, "Risk semivariogram",
-            "How different the risks of two districts are, by the distance between them, after removing the "
-            "variation that Poisson chance alone would give (dots sized by number of pairs), with the fitted "
-            f"{kriging.model.model} model used for kriging. A curve that rises and levels off means nearby "
-            "districts share risk; a flat curve means kriging has little to borrow.",
-            "Scatter of semivariance against distance with a fitted curve.")
-
-
-def _figures(areas, graph, local, cfg, key: str, *, kriging=None,
-             suppress_below: int = 0) -> tuple[list[dict], list[str]]:
-    """The bulletin's figures as PNG data URIs, with titles, captions and alt texts.
-
-    Raw ratios of suppressed districts are left out (their map class and funnel position would give the
-    count back); names are cut to 40 characters (a very long name must not stretch a figure).
-    """
-    import matplotlib.pyplot as plt
-
-    from .. import maps
-
-    gdf = areas.copy()
-    gdf["area_name"] = gdf["area_name"].map(lambda n: _plain(short_name(n)))
-    hide = suppressed_mask(gdf["observed"], suppress_below)
-    if hide.any():
-        gdf.loc[hide, ["sir", "sir_low", "sir_high"]] = np.nan
-    source = _plain(cfg.data_source) if cfg.data_source else None
-    period_text = f"{key} ({gdf['period_start'].iloc[0]} to {gdf['period_end'].iloc[0]})"
-    out: list[dict] = []
-    notes: list[str] = []
-
-    def add(fig_id: str, fig, title: str, caption: str, alt: str) -> None:
-        src, w, h = _figure_uri(fig)
-        out.append({"id": fig_id, "src": src, "width": w, "height": h, "title": title,
-                    "caption": caption, "alt": alt})
-
-    with warnings.catch_warnings():
-        # figure-level notes (e.g. areas left out) are repeated in the captions drawn by the maps
-        warnings.simplefilter("ignore", UserWarning)
-        fig = maps.raw_beside_smoothed(gdf, "sir", "rr", period=period_text, source=source,
-                                       missing_label="withheld (small count)" if hide.any() else "no data")
-        add("raw-smoothed", fig, "Raw and smoothed ratios",
-            "Left: standardized incidence ratio (observed / expected). Right: relative risk smoothed by the "
-            f"{cfg.smoothing.model.upper()} model, same classes and colours. Raw ratios of districts with few "
-            "expected cases swing widely; the smoothed map borrows strength from neighbours and the region.",
-            "Two maps side by side: raw standardized incidence ratios and smoothed relative risks per district.")
-
-        if kriging is not None:
-            _kriging_figures(add, gdf, kriging, cfg, period_text, source)
-
-        fig, ax = plt.subplots(figsize=(7.5, 6.5), layout="constrained")
-        maps.exceedance_map(gdf, "p_above_1", threshold=1.0, ax=ax, period=period_text, source=source)
-        add("uncertainty", fig, "Uncertainty: probability of raised risk",
-            "Posterior probability that a district's relative risk exceeds 1. Above 0.8: good evidence of raised "
-            "risk; below 0.2: good evidence of lowered risk; in between: the data cannot tell.",
-            "Map of the posterior probability that each district's relative risk exceeds 1.")
-
-        fig, ax = plt.subplots(figsize=(7.5, 6.5), layout="constrained")
-        maps.bivariate_map(gdf, "rr", "p_above_1", ax=ax, period=period_text, source=source)
-        add("risk-and-certainty", fig, "Risk and certainty together",
-            "Each district's smoothed relative risk class (below 0.9, 0.9 to 1.1, above 1.1) crossed with how "
-            "sure the model is that its risk exceeds 1 (below 0.2, 0.2 to 0.8, above 0.8). Strong colours mean "
-            "a clear signal; pale colours mean the estimate is uncertain, whatever its size.",
-            "Map with a three-by-three colour legend crossing relative-risk class with exceedance-probability class.")
-
-        fig, ax = plt.subplots(figsize=(7.5, 6.5), layout="constrained")
-        maps.cluster_map(gdf, "cluster", ax=ax, period=period_text, source=source)
-        stat = "local Moran's I" if cfg.clusters.statistic == "local_moran" else "Getis–Ord Gi*"
-        add("clusters", fig, "Local clusters",
-            f"Significant local clusters ({stat}, {cfg.clusters.permutations} conditional permutations, "
-            f"{_ADJUST_LABEL[cfg.clusters.adjust].split(' ')[0]} adjustment at {cfg.clusters.alpha:g}). High-High: "
-            "high ratios surrounded by high ratios; Low-Low the reverse; High-Low and Low-High are outliers.",
-            "Map of local cluster categories per district.")
-
-        fig, ax = plt.subplots(figsize=(8.0, 5.5), layout="constrained")
-        shown = gdf.loc[~hide]
-        maps.funnel_plot(shown["observed"], shown["expected"], labels=shown["area_name"], ax=ax)
-        add("funnel", fig, "Funnel plot",
-            "Standardized incidence ratio against expected count with 95% and 99.8% exact Poisson control "
-            "limits around 1. Points outside the funnel vary more than chance alone would usually give."
-            + (f" Districts with 1 to {suppress_below - 1} cases are not shown (small-count suppression)."
-               if hide.any() else ""),
-            "Scatter plot of standardized ratio against expected count with funnel-shaped control limits.")
-    n_islands = int(graph.island_mask().sum())
-    if n_islands:
-        notes.append(f"{n_islands} district(s) have no neighbours in the graph; they take no part in the "
-                     "cluster analysis ('no neighbours').")
-    return out, notes

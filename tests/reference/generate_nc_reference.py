@@ -51,7 +51,7 @@ SIGMA_RATE = -np.log(SIGMA_TAIL) / SIGMA_UPPER
 
 # ----------------------------------------------------------------------------- data + graph
 def load_nc():
-    """County table in .shp record order, queen graph from the bundled .gal file, checked."""
+    """County table in .shp record order; rook and queen contiguity built from the polygons themselves."""
     import geopandas as gpd
     import libpysal
 
@@ -59,54 +59,37 @@ def load_nc():
     nc = gpd.read_file(folder / "sids2.shp")
     n = len(nc)
 
-    gal = libpysal.io.open(str(folder / "sids2.gal")).read()
-    # The .gal file keys areas by FIPSNO; map them to record order.
-    pos = {str(int(f)): i for i, f in enumerate(nc["FIPSNO"])}
-    if set(map(str, gal.id_order)) != set(pos):
-        raise RuntimeError("sids2.gal ids do not match the FIPSNO column of sids2.shp")
-    W = np.zeros((n, n))
-    for key, nbrs in gal.neighbors.items():
-        for j in nbrs:
-            W[pos[str(key)], pos[str(j)]] = 1.0
-    if not np.array_equal(W, W.T):
-        raise RuntimeError("sids2.gal is not symmetric")
+    def dense(w) -> np.ndarray:
+        m = np.zeros((n, n))
+        for i, nbrs in w.neighbors.items():
+            m[i, list(nbrs)] = 1.0
+        if not np.array_equal(m, m.T):
+            raise RuntimeError("contiguity graph is not symmetric")
+        return m
 
-    # Cross-check: queen contiguity computed from the polygons themselves.
-    q = libpysal.weights.Queen.from_dataframe(nc, use_index=False, silence_warnings=True)
-    Wq = np.zeros((n, n))
-    for i, nbrs in q.neighbors.items():
-        Wq[i, list(nbrs)] = 1.0
-    graph_check = {
-        "gal_equals_queen_from_polygons": bool(np.array_equal(W, Wq)),
-        "links_gal": int(W.sum() // 2),
-        "links_queen_from_polygons": int(Wq.sum() // 2),
-        "differing_pairs": [
-            (nc["FIPS"][i], nc["FIPS"][j])
-            for i, j in zip(*np.nonzero(np.triu(W != Wq)))
-        ],
-    }
+    # rook: polygons sharing a boundary segment; queen: sharing at least a point (libpysal, graphs only)
+    W = dense(libpysal.weights.Rook.from_dataframe(nc, use_index=False, silence_warnings=True))
+    Wq = dense(libpysal.weights.Queen.from_dataframe(nc, use_index=False, silence_warnings=True))
 
     from scipy.sparse.csgraph import connected_components
 
     n_comp, _ = connected_components(W, directed=False)
-    islands = nc["FIPS"][W.sum(1) == 0].tolist()
     n_comp_q, _ = connected_components(Wq, directed=False)
-    rook = libpysal.weights.Rook.from_dataframe(nc, use_index=False, silence_warnings=True)
-    Wr = np.zeros((n, n))
-    for i, nbrs in rook.neighbors.items():
-        Wr[i, list(nbrs)] = 1.0
-    graph_check.update(gal_equals_rook_from_polygons=bool(np.array_equal(W, Wr)),
-                       n_components=int(n_comp), islands=islands,
-                       n_components_queen=int(n_comp_q),
-                       islands_queen=nc["FIPS"][Wq.sum(1) == 0].tolist(),
-                       min_neighbours=int(W.sum(1).min()), max_neighbours=int(W.sum(1).max()))
+    graph_check = {
+        "links_rook": int(W.sum() // 2),
+        "links_queen": int(Wq.sum() // 2),
+        "queen_only_pairs": [(nc["FIPS"][i], nc["FIPS"][j]) for i, j in zip(*np.nonzero(np.triu(W != Wq)))],
+        "n_components": int(n_comp), "islands": nc["FIPS"][W.sum(1) == 0].tolist(),
+        "n_components_queen": int(n_comp_q), "islands_queen": nc["FIPS"][Wq.sum(1) == 0].tolist(),
+        "min_neighbours": int(W.sum(1).min()), "max_neighbours": int(W.sum(1).max()),
+    }
 
     births = nc["BIR74"].to_numpy(float)
     y = nc["SID74"].to_numpy(float)
     E = births * y.sum() / births.sum()
     x = nc["NWBIR74"].to_numpy(float) / births
     x_std = (x - x.mean()) / x.std(ddof=0)
-    return nc, {"gal": W, "queen": Wq}, y, E, x_std, graph_check
+    return nc, {"rook": W, "queen": Wq}, y, E, x_std, graph_check
 
 
 def scaling_and_eigen(W):
@@ -357,7 +340,7 @@ def prior_check(models, gamma, *, n_warmup=2000, n_draws=10000):
     sigma = s["sigma"].ravel()
     grid = [0.1, 0.25, 0.5, 0.75, 0.9]
     ess_phi = diagnostics(s["phi"])["ess_bulk"]
-    lines = [f"# Prior-only check of the BYM2 model code (graph gal; {N_CHAINS} chains x ({n_warmup} + {n_draws}),"
+    lines = [f"# Prior-only check of the BYM2 model code (graph rook; {N_CHAINS} chains x ({n_warmup} + {n_draws}),"
              f" divergences {info['divergences']}); bulk ESS of phi {ess_phi:.0f}",
              "# quantity: sampled vs exact (exact = normalised PC prior on phi, Exponential on sigma)"]
     for g in grid:
@@ -391,9 +374,9 @@ def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--quick", action="store_true", help="short chains, write nothing (smoke test)")
     ap.add_argument("--models", default="bym2,leroux,bym2_covariate")
-    ap.add_argument("--graphs", default="gal,queen")
+    ap.add_argument("--graphs", default="rook,queen")
     ap.add_argument("--prior-check", action="store_true",
-                    help="only sample BYM2 without data (gal graph) and write prior_check.txt")
+                    help="only sample BYM2 without data (rook graph) and write prior_check.txt")
     args = ap.parse_args(argv)
 
     # Four chains run side by side on the CPU; must be set before JAX is imported.
@@ -414,7 +397,7 @@ def main(argv=None):
     print("graph check:", gcheck)
 
     if args.prior_check:
-        models, _, gamma = build_models(graphs["gal"], y, E, x_std)
+        models, _, gamma = build_models(graphs["rook"], y, E, x_std)
         lines = prior_check(models, gamma)
         print("\n".join(lines))
         (HERE / "prior_check.txt").write_text("\n".join(lines) + "\n")
@@ -430,7 +413,7 @@ def main(argv=None):
                   "# R-hat: rank-normalized split R-hat (max of bulk and folded); ESS bulk/tail as in",
                   "# Vehtari, Gelman, Simpson, Carpenter & Buerkner (2021), Bayesian Analysis 16(2).",
                   "# MCSE(mean) = sd / sqrt(ESS of the draws); MCSE(P(RR>1)) = sqrt(p(1-p)/ESS of the indicator).",
-                  "# graph 'gal' = libpysal's sids2.gal (231 links; equals rook contiguity of the polygons);",
+                  "# graph 'rook' = rook contiguity of the polygons in sids2.shp (231 links);",
                   "# graph 'queen' = queen contiguity computed from sids2.shp (245 links).",
                   f"# graph check: {gcheck}",
                   ""]
@@ -439,10 +422,10 @@ def main(argv=None):
             for k, v in ver.items():
                 fh.write(f"{k}: {v}\n")
         # edge list of both graphs, so tests can rebuild exactly the graph each reference used
-        Wg, Wq = graphs["gal"], graphs["queen"]
+        Wg, Wq = graphs["rook"], graphs["queen"]
         i, j = np.nonzero(np.triu((Wg + Wq) > 0))
         fips = nc["FIPS"].astype(str).to_numpy()
-        pd.DataFrame({"FIPS_a": fips[i], "FIPS_b": fips[j], "in_gal": Wg[i, j].astype(int),
+        pd.DataFrame({"FIPS_a": fips[i], "FIPS_b": fips[j], "in_rook": Wg[i, j].astype(int),
                       "in_queen": Wq[i, j].astype(int)}).to_csv(HERE / "nc_graph_edges.csv", index=False)
 
     const_rows, prior_cols = [], {}
@@ -464,7 +447,7 @@ def main(argv=None):
         consts.update(pc_prior_integral_0_1=total, pc_prior_mass_below_0_5=below)
         const_rows += [{"graph": gname, "name": kk, "value": vv} for kk, vv in consts.items()]
         prior_cols[gname] = logpc(grid)
-        prefix = "nc" if gname == "gal" else f"nc_{gname}"
+        prefix = "nc" if gname == "rook" else f"nc_{gname}"
         for name in args.models.split(","):
             s, info = run_model(f"{gname}/{name}", models[name], n_warmup=n_warmup, n_draws=n_draws,
                                 seed=SEED + k)
@@ -503,7 +486,7 @@ def main(argv=None):
         grid = np.round(np.linspace(0.01, 0.99, 99), 2)
         out = pd.DataFrame({"phi": grid})
         for gname, col in prior_cols.items():
-            out["log_density" if gname == "gal" else f"log_density_{gname}"] = col
+            out["log_density" if gname == "rook" else f"log_density_{gname}"] = col
         out.to_csv(HERE / "nc_pc_phi_prior.csv", index=False, float_format="%.10g")
         pd.DataFrame(const_rows).to_csv(HERE / "nc_model_constants.csv", index=False, float_format="%.12g")
     return 0
