@@ -67,7 +67,7 @@ def make_region(folder: Path, *, names=None, cases: str | None = None, populatio
     (folder / "run.toml").write_text(
         'title = "Grid test"\n[boundaries]\nfile = "areas.gpkg"\nname_column = "area_name"\n'
         '[cases]\nfile = "cases.csv"\n[population]\nfile = "population.csv"\n'
-        "[clusters]\npermutations = 99\n" + extra_config)
+        "[clusters]\npermutations = 99\n[output]\nper_period = false\n" + extra_config)
     return folder / "run.toml"
 
 
@@ -403,3 +403,19 @@ def test_disk_full_and_cross_device_are_operational(published, capsys, monkeypat
     assert code == 3 and text in err and "bug" not in err
     assert (folder_state(folder), archive_state(archive)) == before
     assert not list(published.parent.glob(".bulletin.*"))
+
+
+def test_per_period_folders_follow_the_same_rules(tmp_path, capsys):
+    config = make_region(tmp_path / "r")
+    config.write_text(config.read_text().replace("per_period = false", "per_period = true"))
+    root = tmp_path / "r" / "bulletin"
+    (root / "2026-W44").mkdir(parents=True)
+    (root / "2026-W44" / "index.html").write_text("<p>hand-written</p>")
+    code, _, err = run(["bulletin", config, "--quiet"], capsys)
+    assert code == 2 and "was not written by areamap" in err
+    assert (root / "2026-W44" / "index.html").read_text() == "<p>hand-written</p>"
+    (root / "2026-W44" / "index.html").unlink()
+    code, _, err = run(["bulletin", config, "--quiet"], capsys)
+    assert code == 0, err
+    assert (root / "2026-W44" / MARKER_NAME).is_file() and (root / "latest.html").is_file()
+    assert not [p for p in root.iterdir() if p.name.startswith(".")]
