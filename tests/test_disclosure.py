@@ -104,16 +104,18 @@ def test_public_outputs_hold_no_subtractable_total(demo_analysis, tmp_path):
     table = pd.read_csv(tmp_path / "areas.csv", dtype={"observed": str})
     assert table.loc[hide, "expected"].isna().all()
     shown = table.loc[~hide]
-    # what the page and the tables give: only sums over the shown districts
+    # what the page and run.json give: only sums over districts whose counts are shown
     page = (tmp_path / "index.html").read_text()
-    assert f"{int(areas.loc[~hide, 'observed'].sum()):,} observed" in page
-    assert f"{int(areas['observed'].sum()):,} observed" not in page
-    assert f"not counting the {int(hide.sum())} district(s)" in page
+    run = json.loads((tmp_path / "run.json").read_text())
+    keep = ~hide & ~suppressed_mask(np.nan_to_num(areas["observed_previous"].to_numpy(float)), sb)
+    assert run["totals"]["current"] == int(areas.loc[keep, "observed"].sum())
+    assert run["totals"]["baseline_mean"] is None
+    assert f"Cases this period: {int(areas.loc[keep, 'observed'].sum()):,} " in page
+    assert f"Cases this period: {int(areas['observed'].sum()):,} " not in page
     # sum(expected published) - sum(observed published) is no longer the hidden total
     gap = shown["expected"].sum() - shown["observed"].astype(int).sum()
     hidden_total = int(areas.loc[hide, "observed"].sum())
     assert abs(gap - hidden_total) > 0.5 * hidden_total
-    run = json.loads((tmp_path / "run.json").read_text())
     assert "dic" not in run["model"] and run["public"] is True
 
 

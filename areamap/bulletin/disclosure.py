@@ -189,6 +189,25 @@ def _strip_numbers(reason: object) -> str:
     return re.sub(r"\(([^()=]+)=[<>]?[0-9.]+\)", r"(\1)", text)
 
 
+def _public_totals(table: pd.DataFrame, totals: dict, population: np.ndarray, suppress_below: int) -> dict:
+    """Period totals over the districts whose current and previous counts are both shown (nothing hidden is
+    summed, so no hidden count can be had by subtraction); no baseline (it sums every district's weeks)."""
+    now = table["observed"].to_numpy(float)
+    prev = (table["observed_previous"].to_numpy(float) if "observed_previous" in table.columns
+            else np.full(len(table), np.nan))
+    keep = ~suppressed_mask(now, suppress_below) & ~suppressed_mask(np.nan_to_num(prev), suppress_below)
+    pop = float(np.nansum(population[keep]))
+    current = int(now[keep].sum())
+    have_previous = totals.get("previous") is not None
+    return {
+        **totals, "current": current,
+        "previous": int(np.nansum(prev[keep])) if have_previous else None,
+        "baseline_mean": None, "baseline_weeks": 0, "population": pop,
+        "rate_per_100k": 1e5 * current / pop if pop > 0 else None,
+        "districts_left_out": int((~keep).sum()),
+    }
+
+
 def public_analysis(analysis, *, today=None):
     """The analysis as published by a public run: every number computed without the suppressed counts.
 
@@ -288,7 +307,10 @@ def public_analysis(analysis, *, today=None):
     # a file hash would let a reader test each possible value of a hidden count against the cases file
     info["inputs"] = [{"role": h.get("role"), "name": h.get("name"), "sha256": "withheld in public outputs"}
                       for h in info.get("inputs", [])]
+    info["totals"] = _public_totals(table, info.get("totals") or {}, pop.to_numpy(float).sum(axis=1), sb)
     info = _jsonable(public_run_info(info))
     return dataclasses.replace(
         analysis, areas=table, morans_i=moran, local_clusters=local, empirical_bayes=eb, car_fit=car,
-        inputs=tuple(info["inputs"]), run_info=info, **({"kriging": kriging} if hasattr(analysis, "kriging") else {}))
+        inputs=tuple(info["inputs"]), run_info=info, **({"kriging": kriging} if hasattr(analysis, "kriging") else {}),
+        # the regional weekly curve ends in a total that contains the suppressed counts: not published
+        **({"weekly": None} if hasattr(analysis, "weekly") else {}))

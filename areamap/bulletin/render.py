@@ -349,7 +349,7 @@ def _explorable(analysis, display: pd.DataFrame, words) -> str:
         "observed": display["observed"], "expected": display["expected"],
         "rate": (display["rate"] + " " + display["rate_ci"]).str.strip(),
         "sir": (display["sir"] + " " + display["sir_ci"]).str.strip(),
-        "rr": display["rr"] + " " + display["rr_ci"], "prob": display["prob"],
+        "rr": (display["rr"] + " " + display["rr_ci"]).str.strip(), "prob": display["prob"],
         "cluster": display["cluster"], "flag": display["flag"].where(display["flag"] != "", "—"),
     }, index=table.index)
     sort_values = pd.DataFrame({
