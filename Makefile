@@ -18,7 +18,7 @@ bench: $(STAMP)
 $(STAMP): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
 	$(VENV)/bin/python -m pip install --upgrade pip
-	$(VENV)/bin/python -m pip install -e '.[test]'
+	$(VENV)/bin/python -m pip install -e '.[test,fast]'
 	touch $(STAMP)
 
 clean:

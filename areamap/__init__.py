@@ -113,6 +113,7 @@ from .rates import (
     rolling_window_sum,
     standardized_ratio,
 )
+from .scan import SCAN_DIRECTIONS, ScanResult, prospective_scan, scan_map, spatial_scan
 from .validation import PreparedRun, RunPlan, prepare_run, validate_run
 from .smoothing import (
     PoissonGammaResult,
@@ -154,6 +155,8 @@ __all__ = [
     "choropleth", "raw_beside_smoothed", "bivariate_map", "exceedance_map", "cluster_map", "funnel_limits",
     "funnel_plot", "moran_scatterplot", "shrinkage_plot", "ranked_interval_plot", "add_map_furniture",
     "CLUSTER_STYLE", "locator_map", "weekly_curve", "explorable_map",
+    # scan statistic
+    "SCAN_DIRECTIONS", "ScanResult", "spatial_scan", "prospective_scan", "scan_map",
     # CAR models
     "CarPriors", "CarFit", "fit_car",
     # geostatistical smoothing (risk semivariogram, Poisson kriging)

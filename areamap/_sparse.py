@@ -1,20 +1,30 @@
 """Sparse Cholesky factorization and selected inversion for symmetric positive-definite matrices.
 
-Private helpers of :mod:`areamap.models`. scipy has no sparse Cholesky, so this
-module provides a small, deterministic one compiled with numba:
+Private helpers of :mod:`areamap.models`. scipy has no sparse Cholesky. The repeated
+numeric factorizations and solves run on the supernodal Cholesky of CHOLMOD
+(SuiteSparse) as bundled in the ``cvxopt`` wheels; the rest is a small, deterministic
+set of kernels compiled with numba:
 
 * a fill-reducing ordering computed once per sparsity pattern (the multiple
   minimum degree ordering of SuperLU, taken from ``scipy.sparse.linalg.splu``
   on the pattern of A + Aᵀ; it is only used as an ordering);
 * the elimination tree, the pattern of the factor L and its row patterns (symbolic
-  phase, once);
-* an up-looking numeric factorization A = L Lᵀ that reuses the symbolic phase
-  for every new set of values with the same (or a smaller) pattern;
+  phase, once), and CHOLMOD's supernodal symbolic analysis of the permuted pattern
+  (once);
+* numeric factorizations A = L Lᵀ that reuse the symbolic phase for every new set
+  of values with the same (or a smaller) pattern: CHOLMOD's supernodal kernel (dense
+  BLAS on blocks of columns with the same pattern) or, as a fallback and reference,
+  an up-looking kernel;
 * triangular solves, log-determinant, and the selected inverse: the elements of
-  A⁻¹ on the pattern of L (Takahashi recursions).
+  A⁻¹ on the pattern of L (Takahashi recursions), from the column-wise factor of
+  the up-looking kernel, computed only when a selected inverse is asked for.
 
 References
 ----------
+Chen, Y., Davis, T. A., Hager, W. W. & Rajamanickam, S. (2008). Algorithm 887:
+CHOLMOD, supernodal sparse Cholesky factorization and update/downdate. *ACM
+Transactions on Mathematical Software* 35(3), 22.
+
 Davis, T. A. (2006). *Direct Methods for Sparse Linear Systems*. SIAM (elimination
 tree, row-subtree reach, up-looking Cholesky).
 
@@ -28,6 +38,13 @@ import numba as nb
 import numpy as np
 import scipy.sparse as sp
 from scipy.sparse.linalg import splu
+
+try:  # CHOLMOD's supernodal Cholesky, as bundled in the cvxopt wheels
+    from cvxopt import cholmod as _cholmod
+    from cvxopt import matrix as _cvx_matrix
+    from cvxopt import spmatrix as _cvx_spmatrix
+except ImportError:  # pragma: no cover - cvxopt is the optional 'fast' extra; the numba kernels remain usable
+    _cholmod = _cvx_matrix = _cvx_spmatrix = None
 
 __all__: list[str] = []
 
@@ -282,6 +299,44 @@ def _positions(ap, ai, rows, cols):  # pragma: no cover - compiled
     return out
 
 
+@nb.njit(cache=True)
+def _schur_data(data, diag_pos, pp, ea, eb, dst, c_src, c_dst, n_s):  # pragma: no cover - compiled
+    """Values of S = C - B D⁻¹ Bᵀ on its upper pattern (see :class:`_DiagonalPrefix`).
+
+    Returns (sdata, status): status -1, or the first prefix column whose pivot is not positive.
+    """
+    sdata = np.zeros(n_s)
+    for t in range(c_src.size):
+        sdata[c_dst[t]] += data[c_src[t]]
+    for j in range(diag_pos.size):
+        d = data[diag_pos[j]]
+        if not d > 0.0:
+            return sdata, j
+        for t in range(pp[j], pp[j + 1]):
+            sdata[dst[t]] -= data[ea[t]] * data[eb[t]] / d
+    return sdata, -1
+
+
+@nb.njit(cache=True)
+def _prefix_pairs(bp, bi, bsrc, total):  # pragma: no cover - compiled
+    """For each column j of B (CSC: rows bi, data positions bsrc), all pairs a <= b of its entries:
+    data positions (ea, eb) and rows (ra <= rb)."""
+    ea = np.empty(total, np.int64)
+    eb = np.empty(total, np.int64)
+    ra = np.empty(total, np.int64)
+    rb = np.empty(total, np.int64)
+    t = 0
+    for j in range(bp.size - 1):
+        for a in range(bp[j], bp[j + 1]):
+            for b in range(a, bp[j + 1]):
+                ea[t] = bsrc[a]
+                eb[t] = bsrc[b]
+                ra[t] = bi[a]
+                rb[t] = bi[b]
+                t += 1
+    return ea, eb, ra, rb
+
+
 # --------------------------------------------------------------------- wrapper
 def fill_reducing_order(pattern: sp.spmatrix | sp.sparray) -> np.ndarray:
     """Multiple-minimum-degree ordering of a symmetric pattern (from SuperLU, used as an ordering only)."""
@@ -299,6 +354,123 @@ def fill_reducing_order(pattern: sp.spmatrix | sp.sparray) -> np.ndarray:
     return np.argsort(np.asarray(lu.perm_c, dtype=np.int64)).astype(np.int64)
 
 
+class _CholmodFactor:
+    """CHOLMOD's supernodal factorization of a fixed upper-triangular CSC pattern, in its given order.
+
+    CHOLMOD gets the lower triangle (the transpose): dense rows such as those of the fixed
+    effects then stay spread over many short columns (cvxopt builds a matrix with long
+    columns in quadratic time). ``perm`` maps the upper-triangle data order to cvxopt's
+    compressed-column order of the lower triangle.
+    """
+
+    def __init__(self, n: int, ap: np.ndarray, ai: np.ndarray):
+        self.n = n
+        cols = np.repeat(np.arange(n, dtype=np.int64), np.diff(ap))
+        self.perm = np.lexsort((cols, ai))
+        self.a = _cvx_spmatrix(_cvx_matrix(np.ones(ai.size)), _cvx_matrix(cols[self.perm]),
+                               _cvx_matrix(ai[self.perm].astype(np.int64)), (n, n))
+        # supernodal symbolic analysis, once, keeping the given elimination order
+        self.f = _cholmod.symbolic(self.a, p=_cvx_matrix(np.arange(n, dtype=np.int64)), uplo="L")
+
+    def factorize(self, data: np.ndarray) -> int:
+        self.a.V = _cvx_matrix(data[self.perm])
+        try:
+            _cholmod.numeric(self.a, self.f)
+        except ArithmeticError as err:
+            return int(err.args[0]) if err.args and isinstance(err.args[0], int) else 0
+        return -1
+
+    def logdet(self) -> float:
+        return float(2.0 * np.sum(np.log(np.asarray(_cholmod.diag(self.f)).ravel())))
+
+    def solve(self, b: np.ndarray) -> np.ndarray:
+        """Solve in the factor's own (permuted) indexing; b has shape (n, m)."""
+        cm = _cvx_matrix(np.asfortranarray(b))
+        _cholmod.solve(self.f, cm)
+        return np.asarray(cm)
+
+
+class _DiagonalPrefix:
+    """Factorization of [[D, Bᵀ], [B, C]] with D diagonal (the first k columns of the elimination
+    order are coupled to no earlier column): D is eliminated in closed form and only the Schur
+    complement S = C − B D⁻¹ Bᵀ is factorized by CHOLMOD.
+
+    In the BYM2 latent field these are the unstructured effects v: the matrix CHOLMOD sees is
+    half the size and its supernodes are not split by a hundred thousand one-column nodes.
+    log det A = Σ log D_jj + log det S; solves by block elimination.
+    """
+
+    def __init__(self, n: int, k: int, ap: np.ndarray, ai: np.ndarray):
+        self.n, self.k = n, k
+        cols = np.repeat(np.arange(n, dtype=np.int64), np.diff(ap))
+        rows = ai
+        self.diag_pos = ap[1 : k + 1] - 1  # column j < k holds its diagonal only
+        in_b = (rows < k) & (cols >= k)
+        in_c = rows >= k
+        m2 = n - k
+        # B (m2 x k) with entries pointing at their data positions (+1, so that 0 means none)
+        b_pos = np.flatnonzero(in_b)
+        bmat = sp.csr_matrix((b_pos + 1.0, (cols[b_pos] - k, rows[b_pos])), shape=(m2, k))
+        bmat.sort_indices()
+        self.b_struct = bmat
+        self.b_src = (bmat.data - 1).astype(np.int64)
+        bt = sp.csr_matrix(bmat.T)
+        bt.sort_indices()
+        self.bt_struct = bt
+        self.bt_src = (bt.data - 1).astype(np.int64)
+        # pattern of S: C plus B Bᵀ
+        c_pos = np.flatnonzero(in_c)
+        cpat = sp.csc_matrix((np.ones(c_pos.size), (rows[c_pos] - k, cols[c_pos] - k)), shape=(m2, m2))
+        bone = sp.csr_matrix((np.ones(b_pos.size), bmat.indices, bmat.indptr), shape=(m2, k))
+        spat = sp.triu(cpat + sp.csr_matrix(bone @ bone.T), format="csc")
+        spat.sort_indices()
+        self.s_ap = spat.indptr.astype(np.int64)
+        self.s_ai = spat.indices.astype(np.int64)
+        self.c_src = c_pos.astype(np.int64)
+        self.c_dst = _positions(self.s_ap, self.s_ai, rows[c_pos] - k, cols[c_pos] - k)
+        # every pair (p <= q) of B entries in the same column j of D, grouped by j
+        bc = sp.csc_matrix((b_pos + 1.0, (cols[b_pos] - k, rows[b_pos])), shape=(m2, k))
+        bc.sort_indices()
+        cnt = np.diff(bc.indptr)
+        npair = cnt * (cnt + 1) // 2
+        self.pp = np.concatenate([[0], np.cumsum(npair)]).astype(np.int64)
+        ea, eb, ra, rb = _prefix_pairs(bc.indptr.astype(np.int64), bc.indices.astype(np.int64),
+                                       (bc.data - 1).astype(np.int64), int(self.pp[-1]))
+        self.ea, self.eb = ea, eb
+        self.dst = _positions(self.s_ap, self.s_ai, ra, rb)
+        if np.any(self.c_dst < 0) or np.any(self.dst < 0):  # pragma: no cover - internal consistency
+            raise ValueError("Schur complement outside its pattern")
+        self.s_factor = _CholmodFactor(m2, self.s_ap, self.s_ai)
+        self.d = None
+
+    def factorize(self, data: np.ndarray) -> int:
+        sdata, status = _schur_data(data, self.diag_pos, self.pp, self.ea, self.eb, self.dst,
+                                    self.c_src, self.c_dst, int(self.s_ai.size))
+        if status >= 0:
+            return int(status)
+        self.d = data[self.diag_pos]
+        self.b = sp.csr_matrix((data[self.b_src], self.b_struct.indices, self.b_struct.indptr),
+                               shape=self.b_struct.shape)
+        self.bt = sp.csr_matrix((data[self.bt_src], self.bt_struct.indices, self.bt_struct.indptr),
+                                shape=self.bt_struct.shape)
+        status = self.s_factor.factorize(sdata)
+        return status if status < 0 else status + self.k
+
+    def logdet(self) -> float:
+        return float(np.sum(np.log(self.d))) + self.s_factor.logdet()
+
+    def solve(self, b: np.ndarray) -> np.ndarray:
+        k = self.k
+        b1 = b[:k] / self.d[:, None]
+        x2 = self.s_factor.solve(b[k:] - self.b @ b1)
+        x1 = b1 - (self.bt @ x2) / self.d[:, None]
+        return np.vstack([x1, x2])
+
+
+#: smallest share of the columns in a diagonal prefix for which it is eliminated in closed form
+_PREFIX_SHARE = 0.1
+
+
 class SparseCholesky:
     """Symbolic analysis of a symmetric pattern, reusable for numeric factorizations.
 
@@ -309,26 +481,90 @@ class SparseCholesky:
         factorized later.
     order : ndarray of int, shape (n,)
         Elimination order (``order[k]`` is the original index eliminated k-th).
+    backend : {"auto", "cholmod", "numba"}
+        Kernel of the numeric factorizations and solves: CHOLMOD's supernodal
+        factorization (``"auto"`` when cvxopt is importable) or the up-looking numba
+        kernel. Both use the same ordering; results agree to rounding error. The
+        selected inverse always comes from the column-wise factor of the numba
+        kernel, computed on demand from the last factorized values.
     """
 
-    def __init__(self, pattern, order: np.ndarray):
+    def __init__(self, pattern, order: np.ndarray, *, backend: str = "auto"):
+        if backend == "auto":
+            backend = "cholmod" if _cholmod is not None else "numba"
+        if backend not in ("cholmod", "numba"):  # pragma: no cover - private
+            raise ValueError(f"unknown backend {backend!r}")
+        if backend == "cholmod" and _cholmod is None:  # pragma: no cover - private
+            raise ImportError("the cholmod backend needs cvxopt")
+        self.backend = backend
         self.n = int(pattern.shape[0])
         self.order = np.asarray(order, dtype=np.int64)
         self.inverse_order = np.empty_like(self.order)
         self.inverse_order[self.order] = np.arange(self.n)
         up = self._permuted_upper(sp.csr_matrix(pattern, dtype=float), check=False)
+        up.sort_indices()
         self._ap = up.indptr.astype(np.int64)
         self._ai = up.indices.astype(np.int64)
-        self.parent = _etree(self.n, self._ap, self._ai)
-        self.lp, self.li = _symbolic(self.n, self._ap, self._ai, self.parent)
-        # row patterns of L (the numeric factorizations then skip the elimination-tree walks)
-        self._rp, self._rc, self._rpos = _row_patterns(self.n, self._ap, self._ai, self.parent, self.lp)
         self.n_upper = int(self._ap[-1])
-        self.lx: np.ndarray | None = None
+        self._sym = None  # column-wise symbolic factor (numba kernels), built on first use
+        self._lx = None
+        self._data = None  # last factorized values on the analysed pattern
+        self._factor = None
+        if backend == "cholmod":
+            # columns (in elimination order) coupled to no earlier column: a leading run of them
+            # is eliminated in closed form before CHOLMOD sees the matrix
+            lonely = (np.diff(self._ap) == 1) & (self._ai[np.minimum(self._ap[:-1], self.n_upper - 1)]
+                                                  == np.arange(self.n))
+            k = int(np.argmin(lonely)) if not lonely.all() else self.n - 1
+            if k >= _PREFIX_SHARE * self.n and k > 0:
+                self._cm = _DiagonalPrefix(self.n, k, self._ap, self._ai)
+            else:
+                self._cm = _CholmodFactor(self.n, self._ap, self._ai)
+        else:
+            self._symbolic()
+
+    # ------------------------------------------------ column-wise symbolic factor
+    def _symbolic(self):
+        if self._sym is None:
+            parent = _etree(self.n, self._ap, self._ai)
+            lp, li = _symbolic(self.n, self._ap, self._ai, parent)
+            # row patterns of L (the numeric factorizations then skip the elimination-tree walks)
+            rp, rc, rpos = _row_patterns(self.n, self._ap, self._ai, parent, lp)
+            self._sym = (parent, lp, li, rp, rc, rpos)
+        return self._sym
+
+    @property
+    def parent(self) -> np.ndarray:
+        """Elimination tree (parent of each column in the elimination order; -1 for roots)."""
+        return self._symbolic()[0]
+
+    @property
+    def lp(self) -> np.ndarray:
+        """Column pointers of L (column-wise storage)."""
+        return self._symbolic()[1]
+
+    @property
+    def li(self) -> np.ndarray:
+        """Row indices of L (sorted, diagonal first in each column)."""
+        return self._symbolic()[2]
+
+    @property
+    def lx(self) -> np.ndarray | None:
+        """Values of L in the column-wise storage of :attr:`lp`, :attr:`li` (None before a factorization)."""
+        if self._lx is None and self._data is not None:
+            _, lp, li, rp, rc, rpos = self._symbolic()
+            lx = np.zeros(int(lp[-1]))
+            _numeric_rows(self.n, self._ap, self._ai, self._data, lp, li, rp, rc, rpos, lx)
+            self._lx = lx
+        return self._lx
+
+    @lx.setter
+    def lx(self, value):
+        self._lx = value
 
     @property
     def nnz(self) -> int:
-        """Nonzeros of the factor L."""
+        """Nonzeros of the factor L (column-wise, without the padding of supernodes)."""
         return int(self.lp[-1])
 
     def _permuted_upper(self, a, check=True):
@@ -337,19 +573,22 @@ class SparseCholesky:
         return sp.triu(b, format="csc")
 
     def factorize(self, a) -> int:
-        """Numeric factorization of ``a`` (same pattern as the analysed one); -1 on success."""
+        """Numeric factorization of ``a`` (same or smaller pattern than the analysed one); -1 on success."""
         up = self._permuted_upper(a)
-        lx = np.zeros(self.nnz)
+        up.sort_indices()
         ap = up.indptr.astype(np.int64)
         ai = up.indices.astype(np.int64)
-        if not (np.array_equal(ap, self._ap) and np.array_equal(ai, self._ai)):
-            # a smaller pattern than the analysed one: row patterns do not apply
-            status = _numeric(self.n, ap, ai, up.data.astype(np.float64), self.parent, self.lp, self.li, lx)
+        if np.array_equal(ap, self._ap) and np.array_equal(ai, self._ai):
+            data = up.data.astype(np.float64)
         else:
-            status = _numeric_rows(self.n, ap, ai, up.data.astype(np.float64), self.lp, self.li,
-                                   self._rp, self._rc, self._rpos, lx)
-        self.lx = lx
-        return int(status)
+            # a smaller pattern than the analysed one: scatter into it (explicit zeros elsewhere)
+            cols = np.repeat(np.arange(self.n, dtype=np.int64), np.diff(ap))
+            pos = _positions(self._ap, self._ai, ai, cols)
+            if np.any(pos < 0):  # pragma: no cover - internal consistency
+                raise ValueError("matrix outside the analysed sparsity pattern")
+            data = np.zeros(self.n_upper)
+            data[pos] = up.data
+        return self.factorize_data(data)
 
     def positions(self, rows: np.ndarray, cols: np.ndarray) -> np.ndarray:
         """Indices into the permuted upper-triangular data (see :meth:`factorize_data`) of the
@@ -364,23 +603,46 @@ class SparseCholesky:
         return pos
 
     def factorize_data(self, data: np.ndarray) -> int:
-        """Numeric factorization from values on the analysed pattern (order of :meth:`positions`)."""
-        lx = np.zeros(self.nnz)
-        status = _numeric_rows(self.n, self._ap, self._ai, data, self.lp, self.li,
-                               self._rp, self._rc, self._rpos, lx)
-        self.lx = lx
-        return int(status)
+        """Numeric factorization from values on the analysed pattern (order of :meth:`positions`).
+
+        Returns -1 on success, otherwise a column (>= 0) at which the matrix was found not
+        positive definite.
+        """
+        data = np.ascontiguousarray(data, dtype=np.float64)
+        self._data = data
+        self._lx = None
+        self.sx = None
+        if self.backend == "numba":
+            _, lp, li, rp, rc, rpos = self._symbolic()
+            lx = np.zeros(int(lp[-1]))
+            status = _numeric_rows(self.n, self._ap, self._ai, data, lp, li, rp, rc, rpos, lx)
+            self._lx = lx
+            self._factor = lx
+            return int(status)
+        self._factor = None
+        status = self._cm.factorize(data)
+        if status >= 0:
+            self._data = None
+            return int(status)
+        self._factor = self._cm
+        return -1
 
     def logdet(self) -> float:
         """log det of the factorized matrix."""
-        return float(2.0 * np.sum(np.log(self.lx[self.lp[:-1]])))
+        if self.backend == "numba":
+            return float(2.0 * np.sum(np.log(self.lx[self.lp[:-1]])))
+        return self._cm.logdet()
 
     def solve(self, b: np.ndarray) -> np.ndarray:
         """Solve A x = b for a vector or a matrix of right-hand sides."""
         b = np.asarray(b, dtype=float)
         vec = b.ndim == 1
-        bb = np.ascontiguousarray((b[:, None] if vec else b)[self.order])
-        _solve_inplace(self.n, self.lp, self.li, self.lx, bb)
+        bb = (b[:, None] if vec else b)[self.order]
+        if self.backend == "numba":
+            bb = np.ascontiguousarray(bb)
+            _solve_inplace(self.n, self.lp, self.li, self.lx, bb)
+        else:
+            bb = self._cm.solve(bb)
         out = np.empty_like(bb)
         out[self.order] = bb
         return out[:, 0] if vec else out

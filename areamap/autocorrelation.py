@@ -25,6 +25,8 @@ from __future__ import annotations
 
 import html
 import math
+import os
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -33,6 +35,7 @@ import scipy.sparse as sp
 from scipy import stats
 
 from ._params import check_choice, check_interval, check_positive_int
+from ._permute import CHUNK, block_counts, chunk_table
 from .errors import GraphError, InputError, ParameterError, format_examples
 from .graphs import AreaGraph
 
@@ -944,33 +947,56 @@ def _neighbour_sum_pvalues(
         offset += c * pos.size
     n_slots = offset
     itype = np.int32 if n < 2**31 - 1 else np.int64
-    slot_pos = np.concatenate([np.tile(pos, c) for c, pos, _ in groups]).astype(itype)
 
     if block_size is None:
         block_size = max(1, min(permutations, _BLOCK_BYTES // (16 * n_slots)))
     root = _resolve_seed(seed)
     count = np.zeros(n, dtype=np.int64)
-    for start in range(0, permutations, block_size):
-        stop = min(permutations, start + block_size)
-        gens = _permutation_streams(root, start, stop)
-        P = stop - start
-        draws = np.empty((P, n_slots), dtype=itype)
-        for r, g in enumerate(gens):
-            # indices into the n - 1 other areas; shifted past the focal area below
-            draws[r] = g.integers(0, n - 1, size=n_slots, dtype=itype)
-        draws += draws >= slot_pos
-        for c, pos, off in groups:
-            view = draws[:, off : off + c * pos.size].reshape(P, c, pos.size)
-            if np.prod(1.0 - np.arange(c) / (n - 1)) < 0.5:
-                # many neighbours relative to n: rejection would be slow
-                _floyd_draws(view, pos, gens, n)
-            else:
-                _redraw_duplicates(view, pos, gens, n)
-            sums = v.take(view[:, 0, :])
-            for j in range(1, c):
-                sums += v.take(view[:, j, :])
-            extreme = np.abs(sums - centre[pos]) >= threshold[pos]
-            count[pos] += np.count_nonzero(extreme, axis=0)
+    # Group tables for the compiled kernel; groups with many neighbours relative to n use
+    # Floyd's algorithm instead of rejection (g_c = 0 there: handled below in numpy).
+    floyd = [np.prod(1.0 - np.arange(c) / (n - 1)) < 0.5 for c, _, _ in groups]
+    g_c = np.array([0 if f else c for (c, _, _), f in zip(groups, floyd)], dtype=np.int64)
+    g_off = np.array([off for _, _, off in groups], dtype=np.int64)
+    g_m = np.array([pos.size for _, pos, _ in groups], dtype=np.int64)
+    g_start = np.concatenate([[0], np.cumsum(g_m)]).astype(np.int64)
+    chunks = chunk_table(g_m, CHUNK)
+    t_pos = order.astype(np.int64)
+    workers = max(1, min(len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else
+                         (os.cpu_count() or 1), block_size))
+    with ThreadPoolExecutor(max_workers=workers) as pool:
+        for start in range(0, permutations, block_size):
+            stop = min(permutations, start + block_size)
+            gens = _permutation_streams(root, start, stop)
+            P = stop - start
+            draws = np.empty((P, n_slots), dtype=itype)
+
+            def fill(r, gens=gens, draws=draws):
+                # indices into the n - 1 other areas (shifted past the focal area later);
+                # numpy releases the GIL while filling, so streams are drawn in parallel
+                draws[r] = gens[r].integers(0, n - 1, size=n_slots, dtype=itype)
+
+            list(pool.map(fill, range(P)))
+            dup = np.zeros((P, order.size), dtype=bool)
+            block_counts(draws, chunks, g_c, g_off, g_m, g_start, t_pos, v, centre, threshold,
+                         count, dup)
+            for gi, (c, pos, off) in enumerate(groups):
+                if floyd[gi]:
+                    view = draws[:, off : off + c * pos.size].reshape(P, c, pos.size)
+                    _floyd_draws(view, pos, gens, n)
+                    sums = v.take(view[:, 0, :])
+                    for j in range(1, c):
+                        sums += v.take(view[:, j, :])
+                    extreme = np.abs(sums - centre[pos]) >= threshold[pos]
+                    count[pos] += np.count_nonzero(extreme, axis=0)
+                    continue
+                rs, cols = np.nonzero(dup[:, g_start[gi] : g_start[gi + 1]])  # sorted by permutation
+                if rs.size:
+                    idx = _redraw_duplicates(rs, cols, c, pos, gens, n)
+                    sums = v.take(idx[0])
+                    for j in range(1, c):
+                        sums += v.take(idx[j])
+                    extreme = np.abs(sums - centre[pos[cols]]) >= threshold[pos[cols]]
+                    np.add.at(count, pos[cols], extreme.astype(np.int64))
     p = (count + 1.0) / (permutations + 1.0)
     p[k == 0] = np.nan
     return p
@@ -991,29 +1017,32 @@ def _duplicate_mask(view: np.ndarray) -> np.ndarray:
     return (s[:, 1:, :] == s[:, :-1, :]).any(axis=1)
 
 
-def _redraw_duplicates(view: np.ndarray, pos: np.ndarray, gens, n: int) -> None:
+def _redraw_duplicates(rs: np.ndarray, cols: np.ndarray, c: int, pos: np.ndarray, gens,
+                       n: int) -> np.ndarray:
     """Exact sampling without replacement: redraw every (permutation, area) whose
-    c indices are not all distinct, from that permutation's own stream, until
+    c indices were not all distinct, from that permutation's own stream, until
     they are (rejection sampling; accepted draws are uniform c-subsets).
 
-    The stream of permutation r is consumed in an order that depends only on
-    permutation r's own draws, so results do not depend on the block size.
+    ``rs``, ``cols``: permutation (within the block, sorted) and area (within the group)
+    of each rejected draw. Returns the accepted indices (c, rs.size), shifted past the
+    focal areas ``pos[cols]``. The stream of permutation r is consumed in an order that
+    depends only on permutation r's own draws, so results do not depend on the block size.
     """
-    c = view.shape[1]
-    if c < 2:
-        return
-    rs, cols = np.nonzero(_duplicate_mask(view))  # sorted by permutation
-    while rs.size:
-        new = np.empty((c, rs.size), dtype=view.dtype)
-        starts = np.flatnonzero(np.r_[True, rs[1:] != rs[:-1]])
-        ends = np.r_[starts[1:], rs.size]
+    out = np.empty((c, rs.size), dtype=np.int64)
+    todo = np.arange(rs.size)
+    while todo.size:
+        r_todo = rs[todo]
+        new = np.empty((c, todo.size), dtype=np.int64)
+        starts = np.flatnonzero(np.r_[True, r_todo[1:] != r_todo[:-1]])
+        ends = np.r_[starts[1:], todo.size]
         for a, b in zip(starts, ends):
-            new[:, a:b] = gens[rs[a]].integers(0, n - 1, size=(c, b - a), dtype=view.dtype)
-        new += new >= pos[cols]
+            new[:, a:b] = gens[r_todo[a]].integers(0, n - 1, size=(c, b - a), dtype=np.int32
+                                                   if n < 2**31 - 1 else np.int64)
+        new += new >= pos[cols[todo]]
         bad = _duplicate_mask(new[None])[0]
-        good = ~bad
-        view[rs[good], :, cols[good]] = new[:, good].T
-        rs, cols = rs[bad], cols[bad]
+        out[:, todo[~bad]] = new[:, ~bad]
+        todo = todo[bad]
+    return out
 
 
 def _floyd_draws(view: np.ndarray, pos: np.ndarray, gens, n: int) -> None:

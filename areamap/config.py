@@ -35,6 +35,7 @@ __all__ = [
     "PriorsConfig",
     "SmoothingConfig",
     "FlagsConfig",
+    "ScanConfig",
     "OutputConfig",
     "ChecksConfig",
     "load_config",
@@ -264,6 +265,39 @@ class FlagsConfig:
     )
     use_clusters: bool = _key(True, "bool", "Also require (or report) membership of a significant High-High cluster.")
     min_observed: int = _key(0, "int", "Do not flag areas with fewer observed cases than this in the window.", low=0)
+    use_scan: bool = _key(True, "bool", "Also flag areas inside a scan zone with p-value below scan.alpha.")
+
+
+@dataclass(frozen=True)
+class ScanConfig:
+    """``[scan]``: the Poisson scan statistic (most likely zone and secondary zones)."""
+
+    enabled: bool = _key(True, "bool", "Run the scan statistic and add its section to the bulletin.")
+    kind: str = _key(
+        "spatial", "choice", "'spatial': zones over the window's counts; 'prospective': cylinders of the last "
+        "1..max_weeks weeks ending at the bulletin week (clusters still going on).",
+        choices=("spatial", "prospective"),
+    )
+    zones: str = _key(
+        "circle", "choice", "Candidate zones: 'circle' (districts whose centroids lie in a circle around each "
+        "district) or 'graph' (connected groups grown through the neighbour graph).", choices=("circle", "graph"),
+    )
+    max_share: float = _key(0.1, "float", "Largest share of the population a zone may hold.", low=0.0, high=0.5,
+                            closed="right")
+    direction: str = _key("high", "choice", "Scan for raised ('high'), lowered ('low') or either ('both') risk.",
+                          choices=("high", "low", "both"))
+    replicates: int = _key(999, "int", "Monte Carlo replicates; the smallest Monte Carlo p-value is "
+                           "1/(replicates + 1).", low=9)
+    alpha: float = _key(0.05, "float", "Zones with a Monte Carlo p-value below this are reported as significant.",
+                        low=0.0, high=1.0, closed="neither")
+    max_zones: int = _key(10, "int", "Most zones computed (the most likely zone and non-overlapping secondary "
+                          "zones).", low=1)
+    max_weeks: int = _key(4, "int", "Prospective scan: cylinders cover the last 1..max_weeks weeks.", low=1)
+    baseline: str = _key(
+        "history", "choice", "Prospective scan: expected shares from each district's earlier weeks ('history') "
+        "or from the expected counts ('expected').", choices=("history", "expected"),
+    )
+    baseline_weeks: int = _key(26, "int", "Prospective scan: earlier weeks read before the scanned weeks.", low=1)
 
 
 @dataclass(frozen=True)
@@ -343,6 +377,7 @@ _SECTIONS: dict[str, type] = {
     "clusters": ClustersConfig,
     "smoothing": SmoothingConfig,
     "flags": FlagsConfig,
+    "scan": ScanConfig,
     "output": OutputConfig,
     "checks": ChecksConfig,
 }
@@ -364,7 +399,7 @@ class RunConfig:
         Bulletin title, region name and a one-line description of the data source.
     seed : int
         Seed of every permutation test and simulation of the run.
-    boundaries, cases, population, standardization, graph, period, clusters, smoothing, flags, output
+    boundaries, cases, population, standardization, graph, period, clusters, smoothing, flags, scan, output
         One frozen dataclass per section.
 
     Examples
@@ -389,6 +424,7 @@ class RunConfig:
     clusters: ClustersConfig = field(default_factory=ClustersConfig, metadata={"kind": "section"})
     smoothing: SmoothingConfig = field(default_factory=SmoothingConfig, metadata={"kind": "section"})
     flags: FlagsConfig = field(default_factory=FlagsConfig, metadata={"kind": "section"})
+    scan: ScanConfig = field(default_factory=ScanConfig, metadata={"kind": "section"})
     output: OutputConfig = field(default_factory=OutputConfig, metadata={"kind": "section"})
     checks: ChecksConfig = field(default_factory=ChecksConfig, metadata={"kind": "section"})
 

@@ -12,27 +12,33 @@ Run: .venv/bin/python benchmarks/bench_local_clusters.py [--quick]
   ``Generator.choice(..., replace=False)`` per area and permutation) on 2,000
   areas, both measured in this run.
 
-Targets: 100,000 areas x 999 permutations in at most 30 s and at most 4 GB peak.
+Targets: 100,000 areas x 999 permutations in at most 3 s and at most 4 GB peak.
 ``--quick`` uses 99 permutations and skips the 100,000-area Delaunay case.
+``--old REF`` (default: main) also times, back to back in the same run, the implementation of the git
+revision REF (exported with ``git archive`` to a temporary folder) and checks that it gives the same
+p-values for the same seed; ``--old ""`` skips it.
 """
 
 from __future__ import annotations
 
+import hashlib
 import json
 import os
 import platform
 import resource
+import shutil
 import subprocess
 import sys
 import time
 
 import numpy as np
 import scipy.sparse as sp
+from _revision import export_revision
 
 from areamap.autocorrelation import local_clusters
 from areamap.graphs import AreaGraph
 
-TARGET_SECONDS = 30.0
+TARGET_SECONDS = 3.0
 TARGET_BYTES = 4 * 2**30
 
 
@@ -76,6 +82,7 @@ def _values(n: int) -> np.ndarray:
 
 def child(kind: str, size: int, permutations: int) -> None:
     """Runs in a subprocess; prints one JSON line."""
+    local_clusters(_values(36), queen_grid(6), permutations=9, seed=1)  # load compiled kernels
     g = _graph(kind, size)
     x = _values(g.n)
     rss_before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
@@ -87,6 +94,7 @@ def child(kind: str, size: int, permutations: int) -> None:
         "kind": kind, "n": g.n, "links": int(g.adjacency.nnz // 2), "permutations": permutations,
         "seconds": dt, "cpu_seconds": cpu, "peak_bytes": peak, "rss_before_bytes": rss_before,
         "labelled": int(res.significant.sum()),
+        "p_digest": hashlib.sha256(np.nan_to_num(res.p_value, nan=-1.0).tobytes()).hexdigest()[:16],
     }))
 
 
@@ -113,15 +121,27 @@ def naive_loop(x: np.ndarray, graph: AreaGraph, permutations: int, seed: int) ->
     return p
 
 
-def _run_child(kind: str, size: int, permutations: int) -> dict:
+def _run_child(kind: str, size: int, permutations: int, pythonpath: str | None = None) -> dict:
+    env = dict(os.environ)
+    if pythonpath:
+        env["PYTHONPATH"] = pythonpath + os.pathsep + env.get("PYTHONPATH", "")
     out = subprocess.run(
         [sys.executable, __file__, "--child", kind, str(size), str(permutations)],
-        check=True, capture_output=True, text=True,
+        check=True, capture_output=True, text=True, env=env,
     )
     return json.loads(out.stdout.strip().splitlines()[-1])
 
 
-def main(quick: bool) -> int:
+def main(quick: bool, old: str = "main") -> int:
+    old_path = export_revision(old) if old else None
+    try:
+        return _main(quick, old, old_path)
+    finally:
+        if old_path:
+            shutil.rmtree(old_path, ignore_errors=True)
+
+
+def _main(quick: bool, old: str, old_path: str | None) -> int:
     perms = 99 if quick else 999
     load = " ".join(f"{v:.1f}" for v in os.getloadavg())
     print(f"load average at start: {load} (wall time is inflated on a busy machine; cpu s is not)")
@@ -134,7 +154,15 @@ def main(quick: bool) -> int:
     for kind, size in cases:
         r = _run_child(kind, size, perms)
         print(f"{r['kind']:<9}{r['n']:>9}{r['links']:>9}{r['permutations']:>7}"
-              f"{r['seconds']:>10.2f}{r['cpu_seconds']:>8.2f}{r['peak_bytes'] / 2**20:>10.0f}{r['rss_before_bytes'] / 2**20:>9.0f}{r['labelled']:>9}")
+              f"{r['seconds']:>10.2f}{r['cpu_seconds']:>8.2f}{r['peak_bytes'] / 2**20:>10.0f}{r['rss_before_bytes'] / 2**20:>9.0f}{r['labelled']:>9}"
+              f"  load {os.getloadavg()[0]:.1f}")
+        if old_path:
+            o = _run_child(kind, size, perms, old_path)
+            same = "same p-values" if o["p_digest"] == r["p_digest"] else "DIFFERENT p-values"
+            print(f"{'  old (' + old + ')':<18}{'':>9}{'':>7}{o['seconds']:>10.2f}{o['cpu_seconds']:>8.2f}"
+                  f"{o['peak_bytes'] / 2**20:>10.0f}{o['rss_before_bytes'] / 2**20:>9.0f}{o['labelled']:>9}"
+                  f"  old / new wall {o['seconds'] / r['seconds']:.2f}, {same}")
+            status = status or (0 if o["p_digest"] == r["p_digest"] else 1)
         if r["n"] >= 100_000 and r["permutations"] == 999:
             ok = r["seconds"] <= TARGET_SECONDS and r["peak_bytes"] <= TARGET_BYTES
             print(f"  target ({TARGET_SECONDS:.0f} s, {TARGET_BYTES / 2**30:.0f} GB): "
@@ -163,4 +191,6 @@ if __name__ == "__main__":
     if len(sys.argv) > 1 and sys.argv[1] == "--child":
         child(sys.argv[2], int(sys.argv[3]), int(sys.argv[4]))
     else:
-        raise SystemExit(main("--quick" in sys.argv[1:]))
+        argv = sys.argv[1:]
+        ref = argv[argv.index("--old") + 1] if "--old" in argv else "main"
+        raise SystemExit(main("--quick" in argv, ref))

@@ -1,24 +1,34 @@
 """Benchmark of areamap.models.fit_car: BYM2 with 2 covariates on queen grids of 10,000 and 100,000 areas.
 
-Run:  .venv/bin/python benchmarks/bench_models.py [--sizes 10000,100000] [--mcmc]
+Run:  .venv/bin/python benchmarks/bench_models.py [--sizes 10000,100000] [--old main] [--profile] [--mcmc]
 
 Each size runs in a fresh subprocess that reports wall time (split into graph constants, fit) and its
-peak resident memory (resource.getrusage, ru_maxrss). Targets: <= 10 s for 10,000 areas, <= 120 s for
-100,000 areas, each within 4 GB peak memory. Prints ratios to the targets. With --mcmc, and when
-benchmarks/_mcmc_reference.py and its library are importable, also times a general-purpose MCMC sampler
-on the same model with 900 areas and prints the ratio.
+peak resident memory (resource.getrusage, ru_maxrss). Targets: <= 3 s for 10,000 areas, <= 45 s for
+100,000 areas, each within 2 GB peak memory. Prints ratios to the targets and the load average.
+
+With --old REF (default: main) each size is also fitted, back to back in the same run, by the engine of
+the git revision REF (exported with ``git archive`` to a temporary folder and put first on PYTHONPATH),
+and the ratio old / new is printed; ``--old ""`` skips it. --profile prints where the time of the new
+engine goes (cProfile, top functions by own time). With --mcmc, and when benchmarks/_mcmc_reference.py
+and its library are importable, also times a general-purpose MCMC sampler on the same model with 900
+areas and prints the ratio.
 """
 
 from __future__ import annotations
 
 import argparse
 import json
+import os
+import shutil
 import subprocess
 import sys
 import time
+from pathlib import Path
 
-TARGETS = {10_000: 10.0, 100_000: 120.0}
-MEMORY_LIMIT_MB = 4096.0
+from _revision import export_revision
+
+TARGETS = {10_000: 3.0, 100_000: 45.0}
+MEMORY_LIMIT_MB = 2048.0
 
 
 def queen_grid(nrow: int, ncol: int):
@@ -57,11 +67,12 @@ def simulate(graph, seed: int = 20261202):
     return y.astype(float), e, x
 
 
-def _child(n: int) -> None:
+def _child(n: int, profile: bool = False) -> None:
     import resource
 
     import numpy as np
 
+    import areamap
     from areamap.models import fit_car
 
     side = int(round(np.sqrt(n)))
@@ -70,18 +81,38 @@ def _child(n: int) -> None:
     y, e, x = simulate(g)
     t1 = time.perf_counter()
     c1 = time.process_time()
+    if profile:
+        import cProfile
+        import io
+        import pstats
+
+        prof = cProfile.Profile()
+        prof.enable()
     fit = fit_car(y, e, g, covariates=x)
     t2 = time.perf_counter()
     cpu = time.process_time() - c1
+    if profile:
+        prof.disable()
+        buf = io.StringIO()
+        pstats.Stats(prof, stream=buf).sort_stats("tottime").print_stats(14)
+        print(buf.getvalue(), file=sys.stderr)
     peak_mb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
     d = fit._design
-    print(json.dumps({
+    print(json.dumps({"engine": str(Path(areamap.__file__).parent),
         "n": g.n, "setup_s": t1 - t0, "fit_s": t2 - t1, "cpu_s": cpu, "peak_mb": peak_mb,
         "design_points": fit.n_design_points, "laplace_evaluations": d.n_evaluations,
         "coef": fit.coefficients["mean"].round(4).tolist(),
         "sigma": float(fit.hyperparameters.loc["sigma", "mean"]),
         "phi": float(fit.hyperparameters.loc["phi", "mean"]),
     }))
+
+
+def _run(args: list[str], pythonpath: str | None = None) -> subprocess.CompletedProcess:
+    """Run this script in a subprocess, with ``pythonpath`` (an exported old engine) first on the path."""
+    env = dict(os.environ)
+    if pythonpath:
+        env["PYTHONPATH"] = pythonpath + os.pathsep + env.get("PYTHONPATH", "")
+    return subprocess.run([sys.executable, __file__, *args], capture_output=True, text=True, env=env)
 
 
 def _warm() -> None:
@@ -149,6 +180,9 @@ def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--sizes", default="10000,100000")
     ap.add_argument("--mcmc", action="store_true", help="also time the MCMC reference sampler (900 areas)")
+    ap.add_argument("--old", default="main", help="git revision whose engine is timed back to back "
+                    "with the working tree (empty: skip)")
+    ap.add_argument("--profile", action="store_true", help="print where the new engine's time goes")
     ap.add_argument("--child", type=int, default=None, help=argparse.SUPPRESS)
     ap.add_argument("--warm", action="store_true", help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
@@ -156,21 +190,44 @@ def main(argv=None) -> int:
         _warm()
         return 0
     if args.child:
-        _child(args.child)
+        _child(args.child, args.profile)
         return 0
-    subprocess.run([sys.executable, __file__, "--warm"], check=True)
-    print(f"{'areas':>8} {'fit s':>8} {'cpu s':>8} {'target s':>8} {'ratio':>6} {'peak MB':>8} {'mem ratio':>9} "
-          f"{'points':>6} {'evals':>6}")
-    for n in [int(s) for s in args.sizes.split(",") if s]:
-        out = subprocess.run([sys.executable, __file__, "--child", str(n)], capture_output=True, text=True)
-        if out.returncode != 0:
-            print(f"{n:>8} failed:\n{out.stderr[-2000:]}")
-            continue
-        r = json.loads(out.stdout.strip().splitlines()[-1])
-        tgt = TARGETS.get(n, float("nan"))
-        print(f"{r['n']:>8} {r['fit_s']:>8.2f} {r['cpu_s']:>8.2f} {tgt:>8.0f} {r['fit_s'] / tgt:>6.2f} {r['peak_mb']:>8.0f} "
-              f"{r['peak_mb'] / MEMORY_LIMIT_MB:>9.2f} {r['design_points']:>6} {r['laplace_evaluations']:>6}"
-              f"   (sigma {r['sigma']:.3f}, phi {r['phi']:.3f}, coef {r['coef']})")
+    old_path = export_revision(args.old) if args.old else None
+    try:
+        engines = [("new", None)] + ([(f"old ({args.old})", old_path)] if old_path else [])
+        for _, path in engines:
+            out = _run(["--warm"], path)
+            if out.returncode != 0:
+                print(f"warm-up failed:\n{out.stderr[-2000:]}")
+                return 1
+        print(f"load average at start: {' '.join(f'{v:.1f}' for v in os.getloadavg())} "
+              "(shared machine: compare old and new within this run)")
+        print(f"{'areas':>8} {'engine':<12} {'fit s':>8} {'cpu s':>8} {'target s':>8} {'ratio':>6} {'peak MB':>8} "
+              f"{'mem ratio':>9} {'points':>6} {'evals':>6} {'load':>5}")
+        for n in [int(s) for s in args.sizes.split(",") if s]:
+            walls = {}
+            for name, path in engines:
+                load = os.getloadavg()[0]
+                child = ["--child", str(n)] + (["--profile"] if args.profile and path is None else [])
+                out = _run(child, path)
+                if out.returncode != 0:
+                    print(f"{n:>8} {name:<12} failed:\n{out.stderr[-2000:]}")
+                    continue
+                r = json.loads(out.stdout.strip().splitlines()[-1])
+                walls[name] = r["fit_s"]
+                tgt = TARGETS.get(n, float("nan"))
+                print(f"{r['n']:>8} {name:<12} {r['fit_s']:>8.2f} {r['cpu_s']:>8.2f} {tgt:>8.0f} {r['fit_s'] / tgt:>6.2f} "
+                      f"{r['peak_mb']:>8.0f} {r['peak_mb'] / MEMORY_LIMIT_MB:>9.2f} {r['design_points']:>6} "
+                      f"{r['laplace_evaluations']:>6} {load:>5.1f}"
+                      f"   (sigma {r['sigma']:.4f}, phi {r['phi']:.4f}, coef {r['coef']})")
+                if args.profile and path is None:
+                    print(out.stderr[-6000:])
+            if len(walls) == 2:
+                old_s = walls[engines[1][0]]
+                print(f"{'':>8} old / new wall time: {old_s / walls['new']:.2f}")
+    finally:
+        if old_path:
+            shutil.rmtree(old_path, ignore_errors=True)
     if args.mcmc:
         _mcmc()
     else:

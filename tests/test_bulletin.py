@@ -56,6 +56,44 @@ def test_cluster_rule_can_be_switched_off():
     assert out.loc["B", "flag_reason"] == ""
 
 
+def test_scan_rule_flags_districts_inside_significant_raised_zones():
+    t = _flag_table(p_exceed=[0.1] * 4, cluster=["not significant"] * 4,
+                    scan_zone=[1, 2, 0, 3], scan_p=[0.0004, 0.2, np.nan, 0.01], scan_high=[True, True, False, False])
+    out = flag_areas(t, scan_alpha=0.05)
+    # A: zone 1 significant; B: zone 2 not significant; C: in no zone; D: significant but a low-risk zone
+    assert out["flag"].tolist() == [True, False, False, False]
+    assert out.loc["A", "flag_reason"] == "inside significant scan zone 1 (p=<0.001)"
+    off = flag_areas(t, rules=FlagRules(use_scan=False))
+    assert not off["flag"].any()
+    text = FlagRules().describe(scan_alpha=0.05)
+    assert "inside a scan zone of raised risk with Monte Carlo p < 0.05" in text
+    assert "scan zone" not in FlagRules().describe()  # no scan run: the rule is not described
+    with pytest.raises(ParameterError, match=r"The 'use_scan' parameter of FlagRules must be True or False"):
+        FlagRules(use_scan="yes")
+
+
+@pytest.mark.slow
+def test_scan_section_run_json_and_columns_agree(demo_run):
+    run = json.loads((demo_run["out"] / "run.json").read_text(encoding="utf-8"))
+    scan = run["scan"]
+    assert scan["kind"] == "spatial" and scan["replicates"] == 999 and scan["max_share"] == 0.1
+    assert scan["seed"] == run["seed"]
+    t = pd.read_csv(demo_run["out"] / "areas.csv", dtype={"area_id": str}).set_index("area_id")
+    for zone in scan["zones_found"]:
+        members = zone["members"]
+        assert (t.loc[members, "scan_zone"] == zone["rank"]).all()
+        np.testing.assert_allclose(t.loc[members, "scan_p"], zone["p_value"], rtol=1e-12)  # copied, not recomputed
+        assert zone["observed"] == t.loc[members, "observed"].sum()
+    assert (t["scan_zone"] > 0).sum() == sum(len(z["members"]) for z in scan["zones_found"])
+    html = (demo_run["out"] / "index.html").read_text(encoding="utf-8")
+    assert '<section id="scan">' in html
+    n_sig = sum(z["p_value"] < 0.05 for z in scan["zones_found"])
+    assert scan["significant_zones"] == n_sig
+    assert html.count('<tr class="scan-row">') == n_sig
+    assert ('id="fig-scan"' in html) == bool(scan["zones_found"])
+    assert "Kulldorff M (1997)" in html
+
+
 @pytest.mark.parametrize("cluster", ["Low-Low", "High-Low", "Low-High", "not significant", "no neighbours"])
 def test_only_high_high_clusters_flag(cluster):
     out = flag_areas(_flag_table(p_exceed=[0.1] * 4, cluster=[cluster] * 4))
@@ -325,7 +363,8 @@ def test_flags_follow_the_rule_and_the_history(demo_run):
     t = pd.read_csv(demo_run["out"] / "areas.csv", dtype={"area_id": str}).set_index("area_id")
     prev = demo_run["previous_csv"].set_index("area_id")
     # the demo's [flags] are the defaults; the 0.8 cut-off is the decision band of Richardson et al. (2004)
-    rule = (t["p_above_1"] >= 0.8) | (t["cluster"] == "High-High")
+    in_scan = (t["scan_zone"] > 0) & (t["scan_p"] < 0.05)  # the demo scans for high risk only
+    rule = (t["p_above_1"] >= 0.8) | (t["cluster"] == "High-High") | in_scan
     assert (t["flag"] == rule).all()
     assert (t.loc[t["flag"], "flag_reason"].str.len() > 0).all()
     assert (t.loc[~t["flag"], "flag_reason"].fillna("") == "").all()
@@ -663,6 +702,29 @@ def test_standardized_rate_columns_with_a_standard_population(demo_copy):
     w = std.set_index("age_group")["population"].reindex(n.columns)
     dsr = 1e5 * (c / n).mul(w / w.sum(), axis=1).sum(axis=1)
     np.testing.assert_allclose(t["std_rate_per_100k"], dsr.reindex(t.index.astype(str)), rtol=1e-9)
+
+
+@pytest.mark.slow
+def test_prospective_scan_in_the_analysis_finds_the_planted_cluster(demo_run):
+    """The demo plants 8 districts at relative risk 2.5 in its last 4 weeks (truth.csv): the prospective scan of
+    the last 1..4 weeks must put most of them in its most likely cylinder."""
+    import dataclasses
+
+    from areamap.bulletin import analyse_period
+    from areamap.config import load_config
+
+    cfg = load_config(demo_run["config"])
+    cfg = dataclasses.replace(cfg, scan=dataclasses.replace(cfg.scan, kind="prospective", replicates=99))
+    analysis = analyse_period(cfg)
+    res = analysis.scan
+    assert res.kind == "space-time" and res.significant[0]
+    truth = pd.read_csv(demo_run["folder"] / "truth.csv", dtype={"district_id": str}).set_index("district_id")
+    planted = set(truth.index[truth["in_planted_cluster"] == 1])
+    assert len(planted & set(res.to_frame().loc[1, "members"])) >= 6
+    assert analysis.run_info["scan"]["kind"] == "prospective"
+    assert analysis.run_info["scan"]["baseline"] == "history"
+    inside = analysis.areas.loc[list(res.to_frame().loc[1, "members"])]
+    assert inside["flag_reason"].str.contains("inside significant scan zone 1", regex=False).all()
 
 
 @pytest.mark.slow

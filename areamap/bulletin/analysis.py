@@ -14,7 +14,9 @@ Steps:
 3. Poisson-gamma empirical-Bayes and CAR (BYM2 / Leroux / ICAR) smoothing;
 4. global Moran's I of the empirical-Bayes standardized ratios, local clusters
    with multiple-testing control;
-5. hotspot flags from explicit rules, compared with the previous period in the
+5. the Poisson scan statistic (most likely zone and secondary zones with
+   Monte Carlo p-values), spatial over the window or prospective;
+6. hotspot flags from explicit rules, compared with the previous period in the
    history archive (new, continuing, resolved; periods flagged in a row).
 
 Cautions
@@ -64,7 +66,8 @@ AREA_COLUMNS = (
     "area_id", "area_name", "period_start", "period_end", "observed", "expected", "population",
     "rate_per_100k", "rate_low", "rate_high",
     "sir", "sir_low", "sir_high", "eb_rr", "rr", "rr_low", "rr_high", "p_above_1",
-    "cluster", "cluster_p", "flag", "flag_reason", "flag_change", "weeks_flagged", "observed_previous",
+    "cluster", "cluster_p", "scan_zone", "scan_p", "flag", "flag_reason", "flag_change", "weeks_flagged",
+    "observed_previous",
 )
 
 #: Columns added after ``rate_high`` when a standard population is configured.
@@ -91,7 +94,9 @@ class FlagRules:
     An area is flagged when it has at least ``min_observed`` observed cases
     and **either** its posterior probability P(RR > threshold) is at least
     ``min_probability`` **or** (when ``use_clusters``) it belongs to a
-    significant High-High local cluster after multiple-testing control.
+    significant High-High local cluster after multiple-testing control **or**
+    (when ``use_scan``) it lies inside a scan zone whose p-value is below the
+    scan's alpha.
 
     Parameters
     ----------
@@ -105,6 +110,8 @@ class FlagRules:
         Areas with fewer observed cases are never flagged (their reason says so).
     threshold : float, default=1.0
         The relative risk in P(RR > threshold).
+    use_scan : bool, default=True
+        Also flag districts inside a significant scan zone (raised risk).
 
     References
     ----------
@@ -117,6 +124,7 @@ class FlagRules:
     use_clusters: bool = True
     min_observed: int = 0
     threshold: float = 1.0
+    use_scan: bool = True
 
     def __post_init__(self) -> None:
         check_interval(self.min_probability, "min_probability", "FlagRules", low=0, high=1, closed="right")
@@ -126,14 +134,20 @@ class FlagRules:
             raise ParameterError(
                 f"The 'use_clusters' parameter of FlagRules must be True or False. Got {self.use_clusters!r} instead."
             )
+        if not isinstance(self.use_scan, bool):
+            raise ParameterError(
+                f"The 'use_scan' parameter of FlagRules must be True or False. Got {self.use_scan!r} instead."
+            )
 
-    def describe(self, *, adjust: str = "fdr", alpha: float = 0.05) -> str:
-        """The rule in one plain sentence (printed on the bulletin)."""
+    def describe(self, *, adjust: str = "fdr", alpha: float = 0.05, scan_alpha: float | None = None) -> str:
+        """The rule in one plain sentence (printed on the bulletin); ``scan_alpha`` None: no scan was run."""
         parts = [f"posterior P(RR > {self.threshold:g}) >= {self.min_probability:g}"]
         if self.use_clusters:
             how = {"fdr": "false-discovery-rate control", "bonferroni": "Bonferroni correction",
                    "none": "no multiple-testing adjustment"}[adjust]
             parts.append(f"membership of a High-High local cluster ({how}, alpha = {alpha:g})")
+        if self.use_scan and scan_alpha is not None:
+            parts.append(f"lying inside a scan zone of raised risk with Monte Carlo p < {scan_alpha:g}")
         text = "a district is flagged when " + " OR ".join(parts)
         if self.min_observed > 0:
             text += f", and only if it has at least {self.min_observed} observed case(s)"
@@ -145,6 +159,7 @@ def flag_areas(
     *,
     rules: FlagRules | None = None,
     adjust: str = "fdr",
+    scan_alpha: float = 0.05,
 ) -> pd.DataFrame:
     """Apply the flag rules to a per-area table and say why each area is flagged.
 
@@ -158,6 +173,11 @@ def flag_areas(
         Default ``FlagRules()``.
     adjust : {"fdr", "bonferroni", "none"}, default="fdr"
         The adjustment behind ``cluster_p`` (named in the reason).
+    scan_alpha : float, default=0.05
+        When the table has columns ``scan_zone`` (rank of the scan zone
+        holding the area, 0 for none), ``scan_p`` (that zone's Monte Carlo
+        p-value) and ``scan_high`` (whether the zone has raised risk), areas in
+        a raised-risk zone with ``scan_p < scan_alpha`` meet the scan rule.
 
     Returns
     -------
@@ -193,16 +213,24 @@ def flag_areas(
     by_prob = np.nan_to_num(p, nan=-1.0) >= rules.min_probability
     by_cluster = (table["cluster"].astype(str).to_numpy() == "High-High") & rules.use_clusters
     enough = table["observed"].to_numpy(float) >= rules.min_observed
-    flag = (by_prob | by_cluster) & enough
+    has_scan = rules.use_scan and {"scan_zone", "scan_p"} <= set(table.columns)
+    scan_p = table["scan_p"].to_numpy(float) if has_scan else np.full(len(table), np.nan)
+    scan_zone = table["scan_zone"].to_numpy(np.int64) if has_scan else np.zeros(len(table), dtype=np.int64)
+    high = table["scan_high"].to_numpy(bool) if has_scan and "scan_high" in table.columns else True
+    by_scan = (scan_zone > 0) & (np.nan_to_num(scan_p, nan=1.0) < scan_alpha) & high
+    flag = (by_prob | by_cluster | by_scan) & enough
     label = _ADJUST_LABEL[adjust]
     t = _fmt_num(rules.threshold)
     reasons = []
-    for pi, bp, bc, ok, q in zip(p, by_prob, by_cluster, enough, table["cluster_p"].to_numpy(float)):
+    rows = zip(p, by_prob, by_cluster, by_scan, enough, table["cluster_p"].to_numpy(float), scan_zone, scan_p)
+    for pi, bp, bc, bs, ok, q, zone, zp in rows:
         met = []
         if bp:
             met.append(f"P(RR>{t}){_fmt_prob(pi)} >= {rules.min_probability:g}")
         if bc:
             met.append(f"High-High cluster ({label}={_fmt_p(q)})")
+        if bs:
+            met.append(f"inside significant scan zone {zone} (p={_fmt_p(zp)})")
         text = "; ".join(met)
         if met and not ok:
             text = (f"not flagged: fewer than {rules.min_observed} observed cases (min_observed); "
@@ -359,6 +387,9 @@ class PeriodAnalysis:
     rules : FlagRules
     inputs : tuple of dict
         Role, name, path and SHA-256 of each input file.
+    scan : ScanResult or None
+        The scan statistic (None when ``[scan] enabled = false`` or the
+        prospective scan lacked earlier weeks; run_info["scan"] says why).
     run_info : dict
         The provenance record (run.json without the output step's timings).
         ``run_info["totals"]`` compares the region's cases this period with
@@ -392,6 +423,7 @@ class PeriodAnalysis:
     weekly: object = field(default=None, repr=False)
     settings: dict = field(default_factory=dict, repr=False)
     kriging: object = field(default=None, repr=False)
+    scan: object = field(default=None, repr=False)
 
     @property
     def window_weeks(self) -> int:
@@ -424,6 +456,7 @@ class PeriodAnalysis:
             + ("" if self.changes.previous_available else " (not in the archive)") + ".",
             f"Global Moran's I (EB-standardized ratios): {m['statistic']:.3f} "
             f"(expected {m['expected']:.3f}, permutation p = {m['p_value']:.3g}).",
+            *_scan_lines(self.run_info),
         ])
 
     def _repr_html_(self) -> str:
@@ -540,7 +573,7 @@ def analyse_period(
 
     t_start = time.perf_counter()
     run_time = _dt.datetime.now(_dt.timezone.utc).replace(microsecond=0)
-    steps = _Steps(progress, 7)
+    steps = _Steps(progress, 8)
     steps.start("configuration", "reading the configuration")
     cfg = _as_config(config, "analyse_period")
     inputs = _input_files(cfg)
@@ -548,7 +581,8 @@ def analyse_period(
               for role, p in inputs if p.is_file()]
     archive = HistoryArchive(cfg.output.archive_path)
     rules = FlagRules(min_probability=cfg.flags.min_probability, use_clusters=cfg.flags.use_clusters,
-                      min_observed=cfg.flags.min_observed, threshold=cfg.smoothing.threshold)
+                      min_observed=cfg.flags.min_observed, threshold=cfg.smoothing.threshold,
+                      use_scan=cfg.flags.use_scan)
 
     run_warnings: list[str] = []
     with _recording_warnings(run_warnings):
@@ -611,6 +645,11 @@ def analyse_period(
                                            alpha=cl.alpha)
         local = local_result.to_frame().reindex(ids)
 
+        scan_result, scan_note = None, None
+        if cfg.scan.enabled:
+            steps.start("scan", f"scan statistic ({cfg.scan.kind}, {cfg.scan.replicates} replicates)")
+            scan_result, scan_note = _run_scan(cfg, study, key, observed, expected, population, boundaries, graph)
+
         steps.start("flags", "flags and comparison with the previous period")
         table = pd.DataFrame(index=ids)
         table["area_name"] = names
@@ -626,9 +665,21 @@ def analyse_period(
         if cfg.smoothing.kriging:
             for col, values in _kriged_columns(kriging, len(ids)).items():
                 table[col] = values
+        zone_high = np.zeros(len(ids), dtype=bool)
+        if scan_result is not None:
+            member = scan_result.district_membership().reindex(ids)
+            table["scan_zone"] = member["zone"].to_numpy(np.int64)
+            table["scan_p"] = member["zone_p_value"].to_numpy(float)
+            raised = scan_result.observed > scan_result.expected
+            for m, r in zip(scan_result.members, raised):
+                zone_high[m] = r
+        else:
+            table["scan_zone"] = np.zeros(len(ids), dtype=np.int64)
+            table["scan_p"] = np.nan
         flags = flag_areas(
-            table.assign(p_exceed=table["p_above_threshold"] if threshold_differs else table["p_above_1"]),
-            rules=rules, adjust=cl.adjust)
+            table.assign(p_exceed=table["p_above_threshold"] if threshold_differs else table["p_above_1"],
+                         scan_high=zone_high),
+            rules=rules, adjust=cl.adjust, scan_alpha=cfg.scan.alpha)
         table["flag"] = flags["flag"].to_numpy(bool)
         table["flag_reason"] = flags["flag_reason"].to_numpy(object)
         settings = period_settings(cfg)
@@ -669,7 +720,10 @@ def analyse_period(
         "empirical_bayes": {"prior_mean": eb.prior_mean, "prior_shape": eb.prior_shape},
         "model": _model_summary(car, cfg),
         **({"kriging": kriging_info} if cfg.smoothing.kriging else {}),
-        "flags": {"rule": rules.describe(adjust=cl.adjust, alpha=cl.alpha), **counts,
+        "scan": _scan_summary(cfg, scan_result, scan_note),
+        "flags": {"rule": rules.describe(adjust=cl.adjust, alpha=cl.alpha,
+                                         scan_alpha=cfg.scan.alpha if scan_result is not None else None),
+                  **counts,
                   "previous_period": changes.previous_period,
                   "previous_available": changes.previous_available},
         "suppress_below": cfg.output.suppress_below,
@@ -684,7 +738,7 @@ def analyse_period(
         config=cfg, period=key, weeks=tuple(window), period_start=start_day, period_end=end_day, areas=areas,
         graph=graph, morans_i=moran, local_clusters=local_result, empirical_bayes=eb, car_fit=car,
         changes=changes, rules=rules, inputs=tuple(hashes), run_info=run_info, weekly=weekly,
-        settings=settings, kriging=kriging,
+        settings=settings, kriging=kriging, scan=scan_result,
     )
 
 
@@ -856,3 +910,62 @@ def _model_summary(car, cfg) -> dict:
     return info
 
 
+def _run_scan(cfg, study, key, observed, expected, population, boundaries, graph):
+    """The configured scan; returns (result, note) with result None and a note when it cannot run."""
+    from ..scan import prospective_scan, spatial_scan
+
+    sc = cfg.scan
+    common = dict(population=population, graph=graph if sc.zones == "graph" else None, max_share=sc.max_share,
+                  direction=sc.direction, replicates=sc.replicates, seed=cfg.seed, alpha=sc.alpha,
+                  max_zones=sc.max_zones)
+    if sc.kind == "spatial":
+        return spatial_scan(observed, expected, boundaries, **common), None
+    weekly = study.weekly_cases()
+    weeks = [w for w in weekly.columns if str(w) <= key][-(sc.baseline_weeks + sc.max_weeks):]
+    need = sc.max_weeks + (1 if sc.baseline == "history" else 0)
+    if len(weeks) < need:
+        return None, (f"The prospective scan needs at least {need} weeks up to {key}; the data hold {len(weeks)}. "
+                      "No scan this period.")
+    # expected counts of the window spread evenly over its weeks: the same expected count each week
+    per_week = expected / max(cfg.period.window_weeks, 1)
+    return prospective_scan(weekly[weeks], per_week, boundaries, max_weeks=sc.max_weeks, baseline=sc.baseline,
+                            **common), None
+
+
+def _scan_lines(run_info: dict) -> list[str]:
+    """One summary line on the scan statistic (none when it is switched off)."""
+    info = run_info.get("scan") or {}
+    if not info.get("enabled"):
+        return []
+    if "zones_found" not in info:
+        return [f"Scan statistic: not run ({info.get('note', 'no result')})"]
+    zones = info["zones_found"]
+    if not zones:
+        return ["Scan statistic: no zone departs from the expected counts."]
+    z = zones[0]
+    return [f"Scan statistic ({info['kind']}): {info['significant_zones']} zone(s) with p < {info['alpha']:g}; "
+            f"most likely zone {z['n_districts']} district(s) around {z['centre']}, observed {z['observed']:.0f} vs "
+            f"expected {z['expected']:.1f}, p = {z['p_value']:.3g}."]
+
+
+def _scan_summary(cfg, result, note) -> dict:
+    """run.json record of the scan: settings and reported zones."""
+    sc = cfg.scan
+    info: dict = {"enabled": sc.enabled, "kind": sc.kind, "zones": sc.zones, "max_share": sc.max_share,
+                  "direction": sc.direction, "replicates": sc.replicates, "alpha": sc.alpha,
+                  "max_zones": sc.max_zones, "seed": cfg.seed}
+    if sc.kind == "prospective":
+        info.update(max_weeks=sc.max_weeks, baseline=sc.baseline, baseline_weeks=sc.baseline_weeks)
+    if note:
+        info["note"] = note
+    if result is None:
+        return info
+    frame = result.to_frame().reset_index()
+    frame["members"] = frame["members"].map(lambda t: [str(x) for x in t])
+    frame["centre"] = frame["centre"].astype(str)
+    info.update(candidate_zones=result.n_zones, total_cases=result.total_cases,
+                p_value_kind="Monte Carlo rank p-value (1 + replicates at least as large) / (replicates + 1); "
+                             "secondary zones against the same maxima (conservative)",
+                zones_found=json.loads(frame.to_json(orient="records")),
+                significant_zones=int(result.significant.sum()))
+    return info

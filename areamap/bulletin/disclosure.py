@@ -55,7 +55,7 @@ __all__ = [
 DISCLOSING_COLUMNS = (
     "expected", "rate_per_100k", "rate_low", "rate_high", "std_rate_per_100k", "std_rate_low", "std_rate_high",
     "sir", "sir_low", "sir_high", "eb_rr", "rr", "rr_low", "rr_high", "p_above_1",
-    "p_above_threshold", "kriged_rr", "kriged_rr_low", "kriged_rr_high", "cluster", "cluster_p", "flag_reason",
+    "p_above_threshold", "kriged_rr", "kriged_rr_low", "kriged_rr_high", "cluster", "cluster_p", "scan_zone", "scan_p", "flag_reason",
 )
 
 #: Decimals of public numeric columns (all districts): coarse enough that a neighbour's suppressed count
@@ -64,7 +64,7 @@ PUBLIC_DECIMALS = {
     "expected": 1, "rate_per_100k": 1, "rate_low": 1, "rate_high": 1, "std_rate_per_100k": 1, "std_rate_low": 1,
     "std_rate_high": 1, "population": 0, "sir": 1, "sir_low": 1, "sir_high": 1, "eb_rr": 1, "rr": 1, "rr_low": 1,
     "rr_high": 1, "p_above_1": 1, "p_above_threshold": 1, "kriged_rr": 1, "kriged_rr_low": 1,
-    "kriged_rr_high": 1, "cluster_p": 2,
+    "kriged_rr_high": 1, "cluster_p": 2, "scan_p": 2,
 }
 
 #: Text shown in place of a withheld text value.

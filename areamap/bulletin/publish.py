@@ -33,7 +33,7 @@ from ..archive import FlagChanges, HistoryArchive
 from ..errors import InputError, ParameterError
 from . import _folder
 from ._folder import MARKER_NAME, OUTPUT_FILES
-from .analysis import Progress, _as_config, _input_files, _Steps, analyse_period
+from .analysis import Progress, _as_config, _input_files, _scan_lines, _Steps, analyse_period
 from .disclosure import public_analysis
 from .render import render_bulletin
 
@@ -114,6 +114,7 @@ class BulletinResult:
             + ("" if self.changes.previous_available else " (not in the archive)") + ".",
             f"Global Moran's I (EB-standardized ratios): {m['statistic']:.3f} "
             f"(expected {m['expected']:.3f}, permutation p = {m['p_value']:.3g}).",
+            *_scan_lines(self.run_info),
             f"Outputs: {self.out}" + (" (public: small counts suppressed)" if self.public else ""),
             *(f"Note: {n}" for n in self.notes),
         ])
@@ -352,8 +353,8 @@ def run_bulletin(
         out_dir, period_notes = _folder.resolve_out(out_dir)
         out_notes += period_notes
         _folder.check_replaceable(out_dir, inputs, public=public, replace_public=replace_public)
-    steps = _Steps(progress, 9)
-    steps.count = 7
+    steps = _Steps(progress, 10)
+    steps.count = 8
     steps.start("outputs", "writing index.html, areas.csv, areas.gpkg, run.json")
     _parent_for(out_dir)
     run_info, recovered = _publish(analysis, out_dir, public=public, replace_public=replace_public,

@@ -152,6 +152,7 @@ SECTIONS: tuple[tuple[str, str], ...] = (
     ("trend", "sections/trend.html"),
     ("explore", "sections/explore.html"),
     ("maps", "sections/maps.html"),
+    ("scan", "sections/scan.html"),
     ("files", "sections/files.html"),
     ("methods", "sections/methods.html"),
     ("cautions", "sections/cautions.html"),
@@ -186,6 +187,15 @@ _REFERENCES = (
     "24(8):1185–1202.",
 )
 
+_SCAN_REFERENCES = (
+    "Abrams AM, Kleinman K, Kulldorff M (2010). Gumbel based p-value approximations for spatial scan "
+    "statistics. International Journal of Health Geographics 9:61.",
+    "Kulldorff M (1997). A spatial scan statistic. Communications in Statistics – Theory and Methods "
+    "26(6):1481–1496.",
+    "Kulldorff M (2001). Prospective time periodic geographical disease surveillance using a scan statistic. "
+    "Journal of the Royal Statistical Society A 164(1):61–72.",
+)
+
 _KRIGING_REFERENCES = (
     "Goovaerts P (2006). Geostatistical analysis of disease data: accounting for spatial support and population "
     "density in the isopleth mapping of cancer mortality risk using area-to-point Poisson kriging. "
@@ -215,7 +225,8 @@ def _moran_sentence(words, statistic: float, expected: float, p: float) -> str:
     return words("moran_none")
 
 
-def _methods(words, cfg, rules: FlagRules, n_window: int, model: dict, has_std: bool) -> list[str]:
+def _methods(words, cfg, rules: FlagRules, n_window: int, model: dict, has_std: bool, *,
+             scan_alpha: float | None = None) -> list[str]:
     st = cfg.standardization
     cl = cfg.clusters
     paras = [
@@ -228,7 +239,8 @@ def _methods(words, cfg, rules: FlagRules, n_window: int, model: dict, has_std: 
         words("method_moran", perm=cl.permutations, seed=cfg.seed),
         words("method_local", stat=words(f"method_stat_{cl.statistic}"), perm=cl.permutations,
               adjust=words(f"method_adjust_{cl.adjust}"), alpha=f"{cl.alpha:g}"),
-        words("method_flags", rule=rules.describe(adjust=cl.adjust, alpha=cl.alpha)),
+        *([_scan_method(cfg)] if scan_alpha is not None else []),
+        words("method_flags", rule=rules.describe(adjust=cl.adjust, alpha=cl.alpha, scan_alpha=scan_alpha)),
         *([words("method_kriging", k=cfg.smoothing.kriging_neighbours)] if getattr(cfg.smoothing, "kriging", False)
           else []),
         words("method_funnel"),
@@ -271,6 +283,8 @@ def _reason(row, words, rules: FlagRules, adjust: str, p_exceed: float) -> str:
                          cut=f"{rules.min_probability:g}", cut_pct=_pct(rules.min_probability), p_pct=_pct(p_exceed)))
     if rules.use_clusters and str(row.cluster) == "High-High":
         met.append(words("reason_cluster", adjust=_ADJUST_LABEL[adjust], q=_p_relation(row.cluster_p)))
+    # the scan rule's reason is kept as the analysis wrote it (zone rank and its p-value)
+    met.extend(part for part in str(row.flag_reason).split("; ") if part.startswith("inside significant scan zone"))
     return "; ".join(met) if met else str(row.flag_reason)
 
 
@@ -410,6 +424,10 @@ def _page_context(analysis: PeriodAnalysis, words, run_info: dict) -> dict:
     flagged_rows = [{**display.loc[i].to_dict(), "key": str(k + 1)} for k, i in enumerate(flagged.index)]
     resolved = table[table["flag_change"] == "resolved"]
     figures, figure_notes = bulletin_figures(analysis, words)
+    scan = _scan_section(analysis)
+    if scan is not None and scan["figure"] is not None:
+        figures.append(scan["figure"])
+    scan_alpha = cfg.scan.alpha if scan is not None and scan["ran"] else None
     locator, _ = locator_figure(analysis, flagged, words)
     trend = trend_figure(analysis, words)
     period = run_info["period"]
@@ -438,7 +456,9 @@ def _page_context(analysis: PeriodAnalysis, words, run_info: dict) -> dict:
                                                          moran.p_permutation)),
         },
         "totals": _totals(words, run_info.get("totals") or analysis.run_info.get("totals", {})),
-        "flag_rule_text": words("flag_rule", rule=rules.describe(adjust=cfg.clusters.adjust, alpha=cfg.clusters.alpha),
+        "scan": scan,
+        "flag_rule_text": words("flag_rule", rule=rules.describe(adjust=cfg.clusters.adjust, alpha=cfg.clusters.alpha,
+                                                                 scan_alpha=scan_alpha),
                                 cut_pct=_pct(rules.min_probability), cluster=cluster_rule),
         "flagged_rows": flagged_rows,
         "has_std_rate": "std_rate_per_100k" in table.columns,
@@ -451,8 +471,10 @@ def _page_context(analysis: PeriodAnalysis, words, run_info: dict) -> dict:
         "files": [{"href": "areas.csv", "text": words("file_csv")}, {"href": "areas.gpkg", "text": words("file_gpkg")},
                   {"href": "run.json", "text": words("file_json")}],
         "latest_href": "../latest.html" if per_period else None,
-        "methods": _methods(words, cfg, rules, n_window, run_info["model"], "std_rate_per_100k" in table.columns),
-        "references": _REFERENCES + (_KRIGING_REFERENCES if getattr(cfg.smoothing, "kriging", False) else ()),
+        "methods": _methods(words, cfg, rules, n_window, run_info["model"], "std_rate_per_100k" in table.columns,
+                            scan_alpha=scan_alpha),
+        "references": _REFERENCES + (_KRIGING_REFERENCES if getattr(cfg.smoothing, "kriging", False) else ())
+        + (_SCAN_REFERENCES if scan_alpha is not None else ()),
         "cautions": _cautions(words, sb),
         "provenance": {
             "version": run_info["version"], "run_time": run_info["run_time"].replace("+00:00", " UTC"),
@@ -463,3 +485,79 @@ def _page_context(analysis: PeriodAnalysis, words, run_info: dict) -> dict:
         },
         "run_notes": [*run_info.get("notes", []), *run_info.get("warnings", [])],
     }
+
+
+# ============================================================================ scan statistic
+def _scan_method(cfg) -> str:
+    sc = cfg.scan
+    shape = ("circles around each district's centroid" if sc.zones == "circle"
+             else "connected groups of districts grown through the neighbour graph, nearest district first")
+    what = {"high": "raised", "low": "lowered", "both": "raised or lowered"}[sc.direction]
+    text = (f"The Poisson scan statistic (Kulldorff 1997) compares every candidate zone ({shape}, holding at most "
+            f"{sc.max_share:.0%} of the population) with the rest of the region and keeps the zone of {what} risk "
+            "with the largest likelihood ratio (the most likely cluster), then secondary zones that do not overlap "
+            f"it. Its p-value comes from {sc.replicates} Monte Carlo replicates of the cases redistributed over the "
+            f"districts under no cluster (seed {cfg.seed}), so it already accounts for having looked at every zone; "
+            "a Gumbel approximation (Abrams et al. 2010) gives p-values below 1/(replicates + 1).")
+    if sc.kind == "prospective":
+        base = ("each district's share of the earlier weeks' cases" if sc.baseline == "history"
+                else "the expected counts")
+        text += (f" Prospective form (Kulldorff 2001): zones are cylinders covering the last 1 to {sc.max_weeks} "
+                 f"weeks up to this week, judged against {base}; only clusters still going on are found. Run "
+                 "weekly, about one in 20 weeks gives p < 0.05 by chance.")
+    return text
+
+
+def _scan_section(analysis) -> dict | None:
+    """Context of the scan section (zone table rows, figure), or None when the scan is switched off."""
+    from .page_figures import _map_figure, _plain, figure_entry
+
+    cfg = analysis.config
+    if not cfg.scan.enabled:
+        return None
+    note = analysis.run_info.get("scan", {}).get("note")
+    res = analysis.scan
+    if res is None:
+        return {"ran": False, "note": note, "rows": [], "figure": None, "kind": cfg.scan.kind}
+    sb = cfg.output.suppress_below
+    frame = res.to_frame()
+    names = analysis.areas["area_name"].astype(str)
+    rows = []
+    for rank, z in frame[frame["significant"]].iterrows():
+        obs = int(z.observed)
+        hide = sb > 1 and 1 <= obs < sb
+        member_names = [names.get(m, str(m)) for m in z.members]
+        rows.append({
+            "rank": str(rank), "centre": names.get(z.centre, str(z.centre)), "n_districts": str(int(z.n_districts)),
+            "members": ", ".join(member_names[:12]) + (f" and {len(member_names) - 12} more"
+                                                       if len(member_names) > 12 else ""),
+            "weeks": f"{z.first_week} to {z.last_week}" if res.kind == "space-time" else "",
+            "observed": f"<{sb}" if hide else str(obs), "expected": _fmt(z.expected, 1),
+            "ratio_inside": "withheld" if hide else _fmt(z.ratio_inside),
+            "llr": _fmt(z.llr), "p_value": _fmt_p(z.p_value),
+            "p_gumbel": "n/a" if not np.isfinite(z.p_gumbel) else (f"{z.p_gumbel:.2g}" if z.p_gumbel >= 1e-12
+                                                                    else "<1e-12"),
+        })
+    figure = None
+    if len(res.llr):
+        from ..scan import scan_map
+
+        gdf = analysis.areas.copy()
+        gdf["area_name"] = gdf["area_name"].astype(str).map(_plain)
+        fig, ax = _map_figure(gdf)
+        scan_map(gdf, res, ax=ax, period=analysis.period,
+                 source=_plain(cfg.data_source) if cfg.data_source else None)
+        span = f"the last 1 to {cfg.scan.max_weeks} weeks" if res.kind == "space-time" else "the window"
+        top = frame.loc[1]
+        finding = (f"Zone 1, the most likely cluster: {int(top.n_districts)} district(s) around "
+                   f"{names.get(top.centre, str(top.centre))}, Monte Carlo p {_fmt_p(top.p_value)}; "
+                   f"{int(res.significant.sum())} zone(s) with p < {cfg.scan.alpha:g}.")
+        figure = figure_entry(
+            fig, "scan", "Scan statistic zones",
+            f"Observed / expected ratio over {span}, with the zones found by the scan statistic outlined and "
+            f"numbered by rank: solid black when p < {cfg.scan.alpha:g}, dashed grey otherwise. A zone's edge comes "
+            "from the candidate shapes, not from the cluster itself.",
+            "Map of observed to expected ratios with the scan statistic zones outlined. " + finding)
+    return {"ran": True, "note": note, "rows": rows, "figure": figure, "kind": res.kind,
+            "n_zones": len(res.llr), "n_significant": int(res.significant.sum()), "alpha": cfg.scan.alpha,
+            "replicates": cfg.scan.replicates, "min_p": _fmt_p(1 / (cfg.scan.replicates + 1))}
