@@ -29,6 +29,7 @@ from .bulletin import (
     run_bulletin,
     suppress_counts,
 )
+from .bulletin.disclosure import DISCLOSING_COLUMNS, public_analysis, public_table
 from .bulletin.wording import load_wording
 from .config import RunConfig, load_config
 from .demo import write_demo
@@ -115,6 +116,7 @@ from .rates import (
     standardized_ratio,
 )
 from .scan import SCAN_DIRECTIONS, ScanResult, prospective_scan, scan_map, spatial_scan
+from .validation import PreparedRun, RunPlan, prepare_run, validate_run
 from .smoothing import (
     PoissonGammaResult,
     SmoothedRates,
@@ -137,6 +139,7 @@ __all__ = [
     "RunConfig", "load_config", "StudyData", "CheckReport", "load_study", "check_study", "read_boundaries",
     "read_cases", "read_population", "read_reference_rates", "read_standard_population", "parse_week",
     "week_of", "week_bounds", "weeks_ending", "week_range", "write_demo",
+    "RunPlan", "PreparedRun", "prepare_run", "validate_run",
     # graphs
     "AreaGraph", "GraphSummary", "build_graph", "read_extra_links", "write_edge_list",
     # rates
@@ -166,5 +169,6 @@ __all__ = [
     # bulletin and history
     "analyse_period", "PeriodAnalysis", "render_bulletin", "run_bulletin", "BulletinResult", "FlagRules",
     "flag_areas", "suppress_counts", "file_sha256", "load_wording",
+    "DISCLOSING_COLUMNS", "public_analysis", "public_table",
     "HistoryArchive", "FlagChanges",
 ]

@@ -21,6 +21,17 @@ Design
   write lock and then fails with an :class:`~areamap.errors.ArchiveError`.
 * Reading never creates the file: a bad run (which fails before writing)
   leaves the archive exactly as it was.
+* Two-phase publishing (schema version 2): the bulletin first *stages* a
+  period (:meth:`HistoryArchive.stage_period`, tables ``pending_periods`` and
+  ``pending_area_results``, invisible to every reader), then moves its output
+  folder into place, then *promotes* the staged rows into the history in one
+  transaction (:meth:`HistoryArchive.promote_period`) and verifies them
+  (:meth:`HistoryArchive.verify_period`). A run interrupted between the two
+  phases leaves a staged entry tagged with its run id; the next run completes
+  it when the published folder carries that run id, and discards it otherwise
+  (:meth:`HistoryArchive.pending`). Version-1 archives are upgraded in place on
+  the next write.
+* File permissions of an existing archive are kept (SQLite writes in place).
 
 Cautions
 --------
@@ -49,11 +60,14 @@ from .intake import parse_week, week_bounds, weeks_ending
 __all__ = ["HistoryArchive", "FlagChanges", "SCHEMA_VERSION", "ARCHIVE_COLUMNS"]
 
 #: Version of the table layout written by this areamap; bumped on incompatible changes.
-SCHEMA_VERSION = 2
+SCHEMA_VERSION = 3
 
-#: Columns added by each schema version (an older archive is upgraded in place when written to).
+#: Older layouts this areamap reads, and upgrades in place on the next write.
+_UPGRADABLE = (1, 2)
+
+#: Per-area columns added by a schema version (added to older archives in place when written to).
 _ADDED_COLUMNS: dict[int, dict[str, str]] = {
-    2: {"week_observed": "INTEGER", "week_expected": "REAL", "week_rr": "REAL", "week_p_above_1": "REAL",
+    3: {"week_observed": "INTEGER", "week_expected": "REAL", "week_rr": "REAL", "week_p_above_1": "REAL",
         "forecast_mean": "REAL", "forecast_low": "REAL", "forecast_high": "REAL", "forecast_q": "REAL",
         "emerging": "INTEGER", "persistent": "INTEGER"},
 }
@@ -78,8 +92,17 @@ ARCHIVE_COLUMNS: dict[str, str] = {
     "flag_reason": "TEXT",
     "flag_change": "TEXT",
     "weeks_flagged": "INTEGER",
-    **_ADDED_COLUMNS[2],
+    **_ADDED_COLUMNS[3],
 }
+
+# Per-period fields after the period key (shared by the history and the staging table).
+_PERIOD_FIELDS = """period_start TEXT NOT NULL,
+    period_end TEXT NOT NULL,
+    window_weeks INTEGER NOT NULL,
+    written_at TEXT NOT NULL,
+    tool_version TEXT,
+    n_areas INTEGER NOT NULL,
+    n_flagged INTEGER NOT NULL"""
 
 _SCHEMA = f"""
 CREATE TABLE IF NOT EXISTS schema_version (
@@ -87,13 +110,7 @@ CREATE TABLE IF NOT EXISTS schema_version (
 );
 CREATE TABLE IF NOT EXISTS periods (
     period TEXT PRIMARY KEY,
-    period_start TEXT NOT NULL,
-    period_end TEXT NOT NULL,
-    window_weeks INTEGER NOT NULL,
-    written_at TEXT NOT NULL,
-    tool_version TEXT,
-    n_areas INTEGER NOT NULL,
-    n_flagged INTEGER NOT NULL
+    {_PERIOD_FIELDS}
 );
 CREATE TABLE IF NOT EXISTS area_results (
     period TEXT NOT NULL REFERENCES periods(period) ON DELETE CASCADE,
@@ -102,6 +119,25 @@ CREATE TABLE IF NOT EXISTS area_results (
     PRIMARY KEY (period, area_id)
 );
 CREATE INDEX IF NOT EXISTS area_results_area ON area_results(area_id, period);
+"""
+
+# Staged (not yet published) periods: same columns plus the run that staged them and its output folder.
+_PENDING_SCHEMA = f"""
+CREATE TABLE IF NOT EXISTS pending_periods (
+    run_id TEXT PRIMARY KEY,
+    period TEXT NOT NULL,
+    {_PERIOD_FIELDS},
+    out_dir TEXT,
+    settings TEXT,
+    series TEXT
+);
+CREATE TABLE IF NOT EXISTS pending_area_results (
+    run_id TEXT NOT NULL REFERENCES pending_periods(run_id) ON DELETE CASCADE,
+    period TEXT NOT NULL,
+    area_id TEXT NOT NULL,
+    {", ".join(f"{c} {t}" for c, t in ARCHIVE_COLUMNS.items())},
+    PRIMARY KEY (run_id, area_id)
+);
 """
 
 # Added without a schema bump: created on demand, absent from archives written before it (their periods
@@ -302,8 +338,8 @@ class HistoryArchive:
                 "schema_version table). Point [output] archive at a new file."
             )
         row = con.execute("SELECT version FROM schema_version").fetchone()
-        if row is not None and row[0] in _ADDED_COLUMNS.keys() | {1} and row[0] < SCHEMA_VERSION:
-            return True  # older layout: readable as is, upgraded by _upgrade when written to
+        if row is not None and row[0] in _UPGRADABLE:
+            return True
         if row is None or row[0] != SCHEMA_VERSION:
             found = None if row is None else row[0]
             raise ArchiveError(
@@ -360,6 +396,136 @@ class HistoryArchive:
             If the archive is locked longer than ``timeout``, damaged, from an
             incompatible version, or ``results`` repeats area ids or lacks ``flag``.
         """
+        staged = self._prepare(period, results, period_start=period_start, period_end=period_end,
+                               window_weeks=window_weeks, tool_version=tool_version)
+        with self._transaction() as con:
+            self._ensure_schema(con)
+            self._replace_period(con, staged)
+            _store_settings(con, staged["key"], None if settings is None else json.dumps(settings, sort_keys=True),
+                            series)
+            if before_commit is not None:
+                before_commit()
+
+    # ------------------------------------------------------------ two-phase publishing
+    def stage_period(
+        self,
+        period: str,
+        results: pd.DataFrame,
+        *,
+        run_id: str,
+        out_dir: str | Path | None = None,
+        period_start: str | _dt.date | None = None,
+        period_end: str | _dt.date | None = None,
+        window_weeks: int = 1,
+        tool_version: str | None = None,
+        settings: dict | None = None,
+        series: str = "",
+    ) -> None:
+        """Phase 1 of publishing: store a period as *pending* (invisible to readers) under ``run_id``.
+
+        Parameters are those of :meth:`write_period`, plus ``run_id`` (unique per
+        run; the bulletin writes it into the folder it publishes) and the output
+        folder the run publishes to (used to recover an interrupted run).
+        Nothing in the history changes until :meth:`promote_period`.
+        """
+        if not isinstance(run_id, str) or not run_id:
+            raise ParameterError(f"The 'run_id' parameter of stage_period must be a non-empty string. Got {run_id!r} instead.")
+        staged = self._prepare(period, results, period_start=period_start, period_end=period_end,
+                               window_weeks=window_weeks, tool_version=tool_version)
+        cols = ["run_id", "period", "area_id", *ARCHIVE_COLUMNS]
+        insert = f"INSERT INTO pending_area_results ({', '.join(cols)}) VALUES ({', '.join('?' * len(cols))})"
+        with self._transaction() as con:
+            self._ensure_schema(con)
+            con.execute("DELETE FROM pending_periods WHERE run_id = ?", (run_id,))
+            con.execute(
+                "INSERT INTO pending_periods VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                (run_id, staged["key"], staged["start"], staged["end"], staged["window_weeks"],
+                 staged["written_at"], staged["tool_version"], staged["n"], staged["flagged"],
+                 None if out_dir is None else str(out_dir),
+                 None if settings is None else json.dumps(settings, sort_keys=True), str(series)),
+            )
+            con.executemany(insert, [(run_id, *row) for row in staged["rows"]])
+
+    def promote_period(self, run_id: str) -> str:
+        """Phase 2 of publishing: move a staged period into the history (replacing that period), atomically.
+
+        Returns
+        -------
+        str
+            The period key.
+
+        Raises
+        ------
+        ArchiveError
+            When nothing is staged under ``run_id`` (already promoted or discarded), or the archive is locked.
+        """
+        with self._transaction() as con:
+            self._ensure_schema(con)
+            row = con.execute("SELECT period, period_start, period_end, window_weeks, written_at, tool_version, "
+                              "n_areas, n_flagged, settings, series FROM pending_periods WHERE run_id = ?",
+                              (run_id,)).fetchone()
+            if row is None:
+                raise ArchiveError(f"No staged period for run {run_id} in the history archive {self.path}.")
+            key, settings_json, series = row[0], row[8], row[9]
+            row = row[:8]
+            _store_settings(con, key, settings_json, series or "")
+            cols = ", ".join(["period", "area_id", *ARCHIVE_COLUMNS])
+            con.execute("DELETE FROM area_results WHERE period = ?", (key,))
+            con.execute("DELETE FROM periods WHERE period = ?", (key,))
+            con.execute("INSERT INTO periods VALUES (?, ?, ?, ?, ?, ?, ?, ?)", row)
+            con.execute(f"INSERT INTO area_results ({cols}) SELECT {cols} FROM pending_area_results "
+                        "WHERE run_id = ? ORDER BY rowid", (run_id,))
+            con.execute("DELETE FROM pending_area_results WHERE run_id = ?", (run_id,))
+            con.execute("DELETE FROM pending_periods WHERE run_id = ?", (run_id,))
+        return key
+
+    def discard_pending(self, run_id: str) -> bool:
+        """Drop a staged period (the run did not publish). Returns whether anything was staged."""
+        if not self.path.exists():
+            return False
+        with self._transaction() as con:
+            if not self._ensure_schema(con, create=False):
+                return False
+            n = con.execute("DELETE FROM pending_periods WHERE run_id = ?", (run_id,)).rowcount
+            con.execute("DELETE FROM pending_area_results WHERE run_id = ?", (run_id,))
+        return n > 0
+
+    def pending(self) -> pd.DataFrame:
+        """Staged, unpublished periods (``run_id``, ``period``, ``written_at``, ``out_dir``), oldest first."""
+        cols = ["run_id", "period", "written_at", "out_dir"]
+        with self._reading() as con:
+            if con is None or con.execute("SELECT 1 FROM sqlite_master WHERE type='table' "
+                                          "AND name='pending_periods'").fetchone() is None:
+                return pd.DataFrame({c: pd.Series(dtype=object) for c in cols})
+            return pd.read_sql_query(f"SELECT {', '.join(cols)} FROM pending_periods ORDER BY written_at", con)
+
+    def verify_period(self, period: str, n_areas: int) -> None:
+        """Re-open the archive by its path and check that ``period`` is there with ``n_areas`` rows.
+
+        Raises
+        ------
+        ArchiveError
+            When the file is gone (for example deleted during the run), unreadable, or lacks the period.
+        """
+        key = _week_key(period)
+        if not self.path.is_file():
+            raise ArchiveError(
+                f"The history archive {self.path} disappeared while the period {key} was being written "
+                "(was it deleted or moved?)."
+            )
+        with self._reading() as con:
+            ok = con is not None and _has_tables(con)
+            found = con.execute("SELECT n_areas FROM periods WHERE period = ?", (key,)).fetchone() if ok else None
+            rows = (con.execute("SELECT COUNT(*) FROM area_results WHERE period = ?", (key,)).fetchone()[0]
+                    if found else 0)
+        if found is None or found[0] != n_areas or rows != n_areas:
+            raise ArchiveError(
+                f"The history archive {self.path} does not hold the period {key} just written "
+                f"({rows} of {n_areas} district rows found); it was changed or replaced during the run."
+            )
+
+    # ------------------------------------------------------------ write helpers
+    def _prepare(self, period, results, *, period_start, period_end, window_weeks, tool_version) -> dict:
         key = _week_key(period)
         monday = week_bounds(key)[0]
         window_weeks = check_positive_int(window_weeks, "window_weeks", "HistoryArchive.write_period")
@@ -374,37 +540,22 @@ class HistoryArchive:
             )
         start = period_start or (monday - _dt.timedelta(days=7 * (window_weeks - 1)))
         end = period_end or (monday + _dt.timedelta(days=6))
-        rows = _rows_for_sql(key, ids, results)
-        flagged = int(np.asarray(results["flag"], dtype=bool).sum())
-        written_at = _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
-        cols = ["period", "area_id", *ARCHIVE_COLUMNS]
-        insert = f"INSERT INTO area_results ({', '.join(cols)}) VALUES ({', '.join('?' * len(cols))})"
+        return {
+            "key": key, "start": str(start), "end": str(end), "window_weeks": window_weeks,
+            "written_at": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+            "tool_version": tool_version, "n": len(ids),
+            "flagged": int(np.asarray(results["flag"], dtype=bool).sum()),
+            "rows": _rows_for_sql(key, ids, results),
+        }
+
+    @contextmanager
+    def _transaction(self) -> Iterator[sqlite3.Connection]:
+        """One BEGIN IMMEDIATE ... COMMIT; rolled back on any error; SQLite errors become ArchiveError."""
         con = self._connect(readonly=False)
         try:
             con.execute("BEGIN IMMEDIATE")
             try:
-                if not self._check_schema(con, allow_empty=True):
-                    # executescript() would COMMIT early; run the statements one by one
-                    for stmt in _SCHEMA.split(";"):
-                        if stmt.strip():
-                            con.execute(stmt)
-                    con.execute("INSERT INTO schema_version (version) VALUES (?)", (SCHEMA_VERSION,))
-                else:
-                    _upgrade(con)
-                con.execute("DELETE FROM area_results WHERE period = ?", (key,))
-                con.execute("DELETE FROM periods WHERE period = ?", (key,))
-                con.execute(
-                    "INSERT INTO periods VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
-                    (key, str(start), str(end), window_weeks, written_at, tool_version, len(ids), flagged),
-                )
-                con.executemany(insert, rows)
-                con.execute(_SETTINGS_SCHEMA)
-                con.execute("DELETE FROM period_settings WHERE period = ?", (key,))
-                if settings is not None:
-                    con.execute("INSERT INTO period_settings VALUES (?, ?, ?)",
-                                (key, str(series), json.dumps(settings, sort_keys=True)))
-                if before_commit is not None:
-                    before_commit()
+                yield con
                 con.execute("COMMIT")
             except BaseException:
                 if con.in_transaction:
@@ -416,6 +567,44 @@ class HistoryArchive:
             raise self._corrupt(exc) from None
         finally:
             con.close()
+
+    def _ensure_schema(self, con: sqlite3.Connection, *, create: bool = True) -> bool:
+        """Create the tables in an empty file, upgrade an older layout; False when empty and not created."""
+        if not self._check_schema(con, allow_empty=True):
+            if not create:
+                return False
+            # executescript() would COMMIT early; run the statements one by one
+            for stmt in (_SCHEMA + _PENDING_SCHEMA).split(";"):
+                if stmt.strip():
+                    con.execute(stmt)
+            con.execute("INSERT INTO schema_version (version) VALUES (?)", (SCHEMA_VERSION,))
+            return True
+        version = con.execute("SELECT version FROM schema_version").fetchone()[0]
+        if version != SCHEMA_VERSION:  # an upgradable older layout: add the staging tables and new columns
+            for stmt in _PENDING_SCHEMA.split(";"):
+                if stmt.strip():
+                    con.execute(stmt)
+            for table in ("area_results", "pending_area_results"):
+                have = {r[1] for r in con.execute(f"PRAGMA table_info({table})")}
+                for v in range(version + 1, SCHEMA_VERSION + 1):
+                    for name, kind in _ADDED_COLUMNS.get(v, {}).items():
+                        if name not in have:
+                            con.execute(f"ALTER TABLE {table} ADD COLUMN {name} {kind}")
+            con.execute("UPDATE schema_version SET version = ?", (SCHEMA_VERSION,))
+        return True
+
+    def _replace_period(self, con: sqlite3.Connection, staged: dict) -> None:
+        key = staged["key"]
+        cols = ["period", "area_id", *ARCHIVE_COLUMNS]
+        insert = f"INSERT INTO area_results ({', '.join(cols)}) VALUES ({', '.join('?' * len(cols))})"
+        con.execute("DELETE FROM area_results WHERE period = ?", (key,))
+        con.execute("DELETE FROM periods WHERE period = ?", (key,))
+        con.execute(
+            "INSERT INTO periods VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
+            (key, staged["start"], staged["end"], staged["window_weeks"], staged["written_at"],
+             staged["tool_version"], staged["n"], staged["flagged"]),
+        )
+        con.executemany(insert, staged["rows"])
 
     # ---------------------------------------------------------------- settings
     def settings(self, period: str) -> dict | None:
@@ -612,14 +801,12 @@ class HistoryArchive:
 
 
 # ----------------------------------------------------------------------------- helpers
-def _upgrade(con: sqlite3.Connection) -> None:
-    """Add the columns of later schema versions to an older archive (inside the write transaction)."""
-    version = con.execute("SELECT version FROM schema_version").fetchone()[0]
-    for v in range(version + 1, SCHEMA_VERSION + 1):
-        for name, kind in _ADDED_COLUMNS[v].items():
-            con.execute(f"ALTER TABLE area_results ADD COLUMN {name} {kind}")
-    if version < SCHEMA_VERSION:
-        con.execute("UPDATE schema_version SET version = ?", (SCHEMA_VERSION,))
+def _store_settings(con: sqlite3.Connection, key: str, settings_json: str | None, series: str) -> None:
+    """Record (or clear) the settings a period was analysed with, inside the caller's transaction."""
+    con.execute(_SETTINGS_SCHEMA)
+    con.execute("DELETE FROM period_settings WHERE period = ?", (key,))
+    if settings_json is not None:
+        con.execute("INSERT INTO period_settings VALUES (?, ?, ?)", (key, str(series), settings_json))
 
 
 def _setting_diffs(old: dict, new: dict, prefix: str = "") -> list[tuple[str, object, object]]:

@@ -14,12 +14,24 @@ Exit codes
 2
     The input, configuration or a parameter is unusable; the message says why
     and how to fix it.
+3
+    The operating system refused an operation (disk full, no permission, a
+    read-only or vanished folder, a move across file systems); the message
+    names the path. A bulletin publishes transactionally, so the previous
+    bulletin folder and the archive are left as they were.
+
+Everything printed that may contain user text (names from the input files,
+paths) passes through :func:`visible`: control characters (terminal escape
+sequences, bidirectional overrides) are shown as ``\\x1b``-style escapes, never
+sent to the terminal.
 """
 
 from __future__ import annotations
 
 import argparse
+import errno
 import os
+import re
 import sys
 import traceback
 import warnings
@@ -29,7 +41,33 @@ from pathlib import Path
 from . import __version__
 from .errors import AreamapError, AreamapWarning
 
-__all__ = ["main"]
+__all__ = ["main", "visible"]
+
+# C0 controls except newline and tab, DEL, C1 controls, and the Unicode bidirectional overrides/isolates that
+# can make a terminal line read differently from its bytes.
+_CONTROL = re.compile("[\x00-\x08\x0b-\x1f\x7f-\x9f\u200e\u200f\u202a-\u202e\u2066-\u2069]")
+
+
+def visible(text: object) -> str:
+    r"""User text made safe for a terminal: control characters shown as escapes (``'\x1b'``).
+
+    Examples
+    --------
+    >>> visible("Ashby\x1b[31m red")
+    'Ashby\\x1b[31m red'
+    >>> visible("two\nlines")
+    'two\nlines'
+    """
+    def esc(m: re.Match) -> str:
+        c = ord(m.group(0))
+        return f"\\x{c:02x}" if c < 0x100 else f"\\u{c:04x}"
+
+    return _CONTROL.sub(esc, str(text))
+
+
+def _say(text: object = "", *, err: bool = False) -> None:
+    print(visible(text), file=sys.stderr if err else sys.stdout, flush=err)
+
 
 
 # --------------------------------------------------------------------------- subcommands
@@ -39,8 +77,8 @@ def _cmd_check(args: argparse.Namespace) -> int:
     from .intake import check_study
 
     config = load_config(args.config)
-    report = check_study(config)
-    print(report.summary())
+    report = check_study(config, period=args.period)
+    _say(report.summary())
     return 0
 
 
@@ -49,11 +87,11 @@ def _cmd_demo(args: argparse.Namespace) -> int:
     from .demo import write_demo
 
     config_path = write_demo(Path(args.out), seed=args.seed)
-    print(f"Demo data written to {config_path.parent}")
-    print(f"Run configuration: {config_path}")
+    _say(f"Demo data written to {config_path.parent}")
+    _say(f"Run configuration: {config_path}")
     result = _demo_bulletins(config_path, Path(args.out) / "bulletin")
-    print(result.summary())
-    print(f"Open {result.out / 'index.html'} in a browser; history: areamap history {config_path}")
+    _say(result.summary())
+    _say(f"Open {result.out / 'index.html'} in a browser; history: areamap history {config_path}")
     return 0
 
 
@@ -76,7 +114,7 @@ def _progress_printer(quiet: bool):
     """Progress lines on stderr, only on an interactive terminal and without --quiet."""
     if quiet or not sys.stderr.isatty():
         return None
-    return lambda message: print(message, file=sys.stderr, flush=True)
+    return lambda message: _say(message, err=True)
 
 
 def _cmd_bulletin(args: argparse.Namespace) -> int:
@@ -84,9 +122,12 @@ def _cmd_bulletin(args: argparse.Namespace) -> int:
     from .bulletin import run_bulletin
 
     result = run_bulletin(args.config, period=args.period, out=args.out, public=args.public,
-                          progress=_progress_printer(args.quiet))
+                          replace_public=args.replace_public, progress=_progress_printer(args.quiet))
     if not args.quiet:
-        print(result.summary())
+        _say(result.summary())
+    else:
+        for note in result.notes:  # what publishing repaired is always reported
+            _say(f"note: {note}", err=True)
     return 0
 
 
@@ -114,7 +155,7 @@ def _cmd_history(args: argparse.Namespace) -> int:
             weekly = load_study(config).weekly_cases()
         except AreamapError:
             weekly = None
-    print(_history_text(table, area=args.area, last=args.last, weekly=weekly))
+    _say(_history_text(table, area=args.area, last=args.last, weekly=weekly))
     return 0
 
 
@@ -132,11 +173,11 @@ def _history_text(table, *, area, last: int, weekly=None) -> str:
         if c in shown:
             shown[c] = shown[c].map(lambda x, d=digits: "" if x is None or x != x else f"{x:.{d}f}")
     shown["flag"] = shown["flag"].map({True: "yes", False: "no"})
+    if "area_name" in shown:
+        shown["area_name"] = shown["area_name"].map(_short_name)
     if "week_observed" in shown and (shown["week_observed"] == "").all():
         shown = shown.drop(columns=["week_observed", "forecast_mean", "forecast_high"], errors="ignore")
     return head + "\n" + shown.to_string(index=False) + "\n\n" + _trend_lines(table, weekly=weekly, last=last)
-
-
 def _flag_letter(row) -> str:
     """One character per period: E emerging, P persistent, C cluster or other rule, . not flagged."""
     if not row.get("flag", False):
@@ -177,6 +218,15 @@ def _trend_lines(table, *, weekly=None, last: int = 8) -> str:
     return "\n".join(lines)
 
 
+#: Longest name printed on the terminal; the tables keep full names.
+NAME_DISPLAY_LIMIT = 40
+
+
+def _short_name(name: object) -> str:
+    text = "" if name is None else str(name)
+    return text if len(text) <= NAME_DISPLAY_LIMIT else text[: NAME_DISPLAY_LIMIT - 1] + "…"
+
+
 # --------------------------------------------------------------------------- parser
 def _build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
@@ -200,6 +250,8 @@ def _build_parser() -> argparse.ArgumentParser:
         ),
     )
     p.add_argument("config", help="path to the run configuration (TOML), e.g. run.toml")
+    p.add_argument("--period", default=None,
+                   help="check for this ISO week (as given to 'areamap bulletin --period'); default: [period] week")
     p.set_defaults(func=_cmd_check)
 
     # demo
@@ -236,6 +288,8 @@ def _build_parser() -> argparse.ArgumentParser:
                         "subfolder (OUT/2026-W47/) and OUT/latest.html points to the newest")
     p.add_argument("--public", action="store_true",
                    help="also suppress small counts in areas.csv and areas.gpkg (the HTML always does)")
+    p.add_argument("--replace-public", action="store_true",
+                   help="allow a run without --public to replace a folder written by a --public run")
     p.add_argument("--quiet", action="store_true", help="print nothing on success (for scheduled runs)")
     p.set_defaults(func=_cmd_bulletin)
 
@@ -261,13 +315,37 @@ def _show_warning(message, category, filename, lineno, file=None, line=None) -> 
     """Print project warnings as one 'warning: ...' line; others in Python's format."""
     stream = file if file is not None else sys.stderr
     if issubclass(category, AreamapWarning):
-        text = f"warning: {message}\n"
+        text = f"warning: {visible(message)}\n"
     else:
         text = warnings.formatwarning(message, category, filename, lineno, line)
     try:
         stream.write(text)
     except OSError:  # pragma: no cover - stderr closed
         pass
+
+
+_OS_REASONS = {
+    errno.ENOSPC: "the disk is full",
+    errno.EDQUOT: "the disk quota is exhausted",
+    errno.EACCES: "permission denied",
+    errno.EPERM: "operation not permitted",
+    errno.EROFS: "the file system is read-only",
+    errno.EXDEV: "the move crosses file systems",
+    errno.ENOENT: "a file or folder disappeared during the run",
+    errno.EIO: "an input/output error of the disk",
+}
+
+
+def _os_error_text(exc: OSError) -> tuple[int, str]:
+    """Exit code and a plain message for an error of the operating system (not a bug of areamap)."""
+    where = " ".join(str(p) for p in (exc.filename, exc.filename2) if p)
+    if exc.errno == errno.ELOOP:
+        return 2, (f"error: {where or 'a path'} is a symbolic link that points back to itself. Fix the link "
+                   "or give the real path.")
+    reason = _OS_REASONS.get(exc.errno, exc.strerror or str(exc))
+    return 3, (f"error: the system refused an operation: {reason}" + (f" ({where})" if where else "")
+               + ". Fix the cause and run again; the previous bulletin folder and the history archive were "
+               "left as they were.")
 
 
 def main(argv: Sequence[str] | None = None) -> int:
@@ -281,8 +359,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     Returns
     -------
     int
-        0 on success, 2 for unusable input or configuration, 1 for an
-        unexpected internal error.
+        0 on success, 2 for unusable input or configuration, 3 when the
+        operating system refused an operation (disk full, permissions), 1 for
+        an unexpected internal error.
 
     Examples
     --------
@@ -311,7 +390,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     except AreamapError as exc:
         if debug:
             traceback.print_exc()
-        print(f"error: {exc}", file=sys.stderr)
+        _say(f"error: {exc}", err=True)
         return 2
     except KeyboardInterrupt:
         print("interrupted", file=sys.stderr)
@@ -322,15 +401,21 @@ def main(argv: Sequence[str] | None = None) -> int:
         devnull = os.open(os.devnull, os.O_WRONLY)
         os.dup2(devnull, sys.stdout.fileno())
         return 0
+    except OSError as exc:
+        if debug:
+            traceback.print_exc()
+        code, text = _os_error_text(exc)
+        _say(text, err=True)
+        return code
     except Exception as exc:  # noqa: BLE001 - last line of defence of the CLI
         if debug:
             traceback.print_exc()
         first = str(exc).splitlines()[0] if str(exc) else ""
-        print(
+        _say(
             f"internal error: {type(exc).__name__}: {first}\n"
             "This is a bug in areamap; please report it with the command you ran "
             "(set AREAMAP_DEBUG=1 to see the traceback).",
-            file=sys.stderr,
+            err=True,
         )
         return 1
     finally:

@@ -37,6 +37,7 @@ __all__ = [
     "FlagsConfig",
     "ScanConfig",
     "OutputConfig",
+    "ChecksConfig",
     "load_config",
     "config_from_dict",
     "config_reference_table",
@@ -192,7 +193,8 @@ class PeriodConfig:
         "latest", "week", "'latest' (the last week with data) or an ISO week such as '2026-W47'."
     )
     window_weeks: int = _key(
-        1, "int", "Number of weeks, ending at `week`, summed into the reporting window (rolling window).", low=1
+        1, "int", "Number of weeks, ending at `week`, summed into the reporting window (rolling window; at most "
+        "520 weeks, ten years).", low=1, high=520
     )
 
 
@@ -207,7 +209,8 @@ class ClustersConfig:
     permutations: int = _key(
         9999, "int", "Conditional permutations per area for the pseudo p-values (>= 19). The smallest possible "
         "p-value is 1/(permutations + 1); with false-discovery-rate control over m areas a single area can only "
-        "reach significance when permutations >= m/alpha - 1, hence the default 9999.", low=19
+        "reach significance when permutations >= m/alpha - 1, hence the default 9999. At most 999999: "
+        "run time grows linearly with it.", low=19, high=999999
     )
     adjust: str = _key(
         "fdr", "choice",
@@ -365,6 +368,31 @@ class OutputConfig:
         return a if not self.series else a.with_name(f"{a.stem}.{self.series}{a.suffix}")
 
 
+@dataclass(frozen=True)
+class ChecksConfig:
+    """``[checks]``: plausibility checks of the inputs (run by both ``areamap check`` and the bulletin)."""
+
+    allow_future_weeks: bool = _key(
+        False, "bool",
+        "Accept case rows dated after the day of the run (normally a typo, e.g. 2099-W10 for 2026-W10).",
+    )
+    max_week_gap: int = _key(
+        52, "int",
+        "A week with cases more than this many weeks after the previous week with cases is treated as a typo "
+        "and refused (0 = no check).", low=0,
+    )
+    implausible: str = _key(
+        "warn", "choice",
+        "What to do with implausible values (a week's cases above the population, weekly rates above "
+        "max_weekly_rate, populations above 10 billion): 'warn' or 'error'.",
+        choices=("warn", "error"),
+    )
+    max_weekly_rate: float = _key(
+        0.1, "float", "Cases per person in one week above which an area's count counts as implausible.",
+        low=0.0, high=1.0, closed="right",
+    )
+
+
 _SECTIONS: dict[str, type] = {
     "boundaries": BoundariesConfig,
     "cases": CasesConfig,
@@ -378,6 +406,7 @@ _SECTIONS: dict[str, type] = {
     "flags": FlagsConfig,
     "scan": ScanConfig,
     "output": OutputConfig,
+    "checks": ChecksConfig,
 }
 
 
@@ -426,6 +455,7 @@ class RunConfig:
     flags: FlagsConfig = field(default_factory=FlagsConfig, metadata={"kind": "section"})
     scan: ScanConfig = field(default_factory=ScanConfig, metadata={"kind": "section"})
     output: OutputConfig = field(default_factory=OutputConfig, metadata={"kind": "section"})
+    checks: ChecksConfig = field(default_factory=ChecksConfig, metadata={"kind": "section"})
 
     @property
     def base_dir(self) -> Path:
@@ -512,7 +542,7 @@ def _convert(name: str, value: object, meta: Mapping, section: str, source: str,
         if not isinstance(value, str) or not value.strip():
             raise bad("a file path (non-empty string)")
         p = Path(value).expanduser()
-        return (p if p.is_absolute() else base_dir / p).resolve()
+        return _resolve_path(p if p.is_absolute() else base_dir / p, label)
     if kind == "int":
         if isinstance(value, bool) or not isinstance(value, int):
             raise bad(f"an integer{_range_text(meta)}")
@@ -582,6 +612,17 @@ def _convert(name: str, value: object, meta: Mapping, section: str, source: str,
             ) from None
         return value
     raise AssertionError(f"unknown key kind {kind!r}")  # pragma: no cover - programming error
+
+
+def _resolve_path(p: Path, label: str) -> Path:
+    """Absolute path with symbolic links resolved; a link loop is a ConfigError, not an internal error."""
+    try:
+        return p.resolve()
+    except (RuntimeError, OSError) as exc:  # RuntimeError: symlink loop (Python < 3.13); OSError: ELOOP
+        raise ConfigError(
+            f"{label} names {p}, which cannot be resolved ({exc}): a symbolic link points back to itself. "
+            "Fix the link or give the real path."
+        ) from None
 
 
 def _unknown_key(name: str, valid: list[str], section: str, source: str) -> ConfigError:
@@ -688,7 +729,7 @@ def config_from_dict(
     if path is not None:
         from dataclasses import replace
 
-        cfg = replace(cfg, path=Path(path).expanduser().resolve())
+        cfg = replace(cfg, path=_resolve_path(Path(path).expanduser(), "The configuration path"))
     _cross_checks(cfg, source)
     return cfg
 
@@ -734,6 +775,7 @@ def load_config(path: str | Path) -> RunConfig:
     (499, True)
     """
     p = Path(path).expanduser()
+    _resolve_path(p, "The configuration path")
     if not p.exists():
         raise ConfigError(f"Configuration file not found: {p}. Check the path (create one with 'areamap demo').")
     if p.is_dir():

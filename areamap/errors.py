@@ -99,6 +99,7 @@ def format_examples(values: Iterable[object], *, limit: int = 5) -> str:
     'A01'
     """
     items = [str(v) for v in values]
-    shown = ", ".join(items[:limit])
+    # cap each shown value: a 200,000-character id must not flood a message
+    shown = ", ".join(v if len(v) <= 80 else v[:79] + "…" for v in items[:limit])
     extra = len(items) - limit
     return f"{shown} and {extra} more" if extra > 0 else shown

@@ -72,6 +72,9 @@ ALL_AGES = "all"
 SMALL_POPULATION = 1000
 """Areas with fewer people than this are listed in the notes (ratios there are unstable)."""
 
+MAX_EXACT_COUNT = 2**53 - 1
+"""Largest count accepted: whole numbers above it are not exact in floating point, and sums overflow."""
+
 # Relative change of area above which make_valid is not considered a safe repair.
 _REPAIR_AREA_TOLERANCE = 0.01
 
@@ -243,9 +246,17 @@ def _read_csv(path: str | Path, *, role: str, encoding: str, section: str) -> tu
         raise InputError(f"Unknown text encoding {encoding!r} for {p.name}; use e.g. 'utf-8' or 'latin-1'.") from None
     if not text.strip():
         raise InputError(f"The {role} file {p.name} is empty (only blank space). It needs a header row and data rows.")
+    sep = _detect_separator(text)
+    if sep != ",":
+        label = {";": "semicolons", "\t": "tabs", "|": "vertical bars"}[sep]
+        warnings.warn(
+            f"The {role} file {p.name} separates its columns with {label}, not commas; it was read that way. "
+            "Numbers must still use a decimal point (830.5, not 830,5).",
+            DataWarning, stacklevel=3,
+        )
     try:
         df = pd.read_csv(
-            StringIO(text), dtype=str, keep_default_na=False, na_values=[""],
+            StringIO(text), sep=sep, dtype=str, keep_default_na=False, na_values=[""],
             skip_blank_lines=False, skipinitialspace=True,
         )
     except pd.errors.ParserError as exc:
@@ -260,6 +271,28 @@ def _read_csv(path: str | Path, *, role: str, encoding: str, section: str) -> tu
             f"The {role} file {p.name} has a header ({format_examples(df.columns)}) but no data rows."
         )
     return df, p.name
+
+
+_SEPARATORS = (",", ";", "\t", "|")
+
+
+def _detect_separator(text: str) -> str:
+    """The column separator: comma unless the header has none and another separator splits it consistently.
+
+    Spreadsheets set to a decimal-comma locale save "CSV" with semicolons; reading such a file with commas
+    gives one column whose name is the whole header, which would be reported as a missing id column.
+    """
+    lines = [ln for ln in text.splitlines()[:50] if ln.strip()]
+    header = lines[0]
+    if "," in header:
+        return ","
+    best, width = ",", 1
+    for sep in _SEPARATORS[1:]:
+        n = header.count(sep) + 1
+        # the separator must split the header and most data lines into the same number of fields
+        if n > width and sum(ln.count(sep) + 1 == n for ln in lines[1:]) >= 0.8 * (len(lines) - 1):
+            best, width = sep, n
+    return best
 
 
 def _require_columns(df: pd.DataFrame, wanted: dict[str, str], name: str, section: str) -> None:
@@ -315,15 +348,24 @@ def _parse_numbers(values: pd.Series, *, column: str, name: str, what: str, whol
     x = np.where(finite, num.to_numpy(), 0.0)
     frac = finite & (x % 1 != 0) if whole else np.zeros(len(s), bool)
     neg = finite & (x < 0)
+    # whole numbers above 2**53 are not stored exactly and their sums overflow 64-bit integers
+    huge = finite & (np.abs(x) > MAX_EXACT_COUNT) if whole else np.zeros(len(s), bool)
     parts = []
     for mask, label in ((missing, f"missing {what}"), (bad, f"{what} that are not numbers"),
-                        (frac, f"fractional {what}"), (neg, f"negative {what}")):
+                        (frac, f"fractional {what}"), (neg, f"negative {what}"),
+                        (huge, f"{what} too large to be exact whole numbers (above {MAX_EXACT_COUNT:,})")):
         if mask.any():
             shown = "" if mask is missing else ": " + _examples(s[mask], fmt=repr if mask is bad else str)
             parts.append(f"{int(mask.sum())} {label} ({_lines_text(s.index[mask], name)}{shown})")
+    if not parts and whole and float(np.sum(x)) > MAX_EXACT_COUNT:
+        parts.append(f"a total of {float(np.sum(x)):.3g} {what}, too large to add up exactly")
     if parts:
         rule = "whole numbers >= 0" if whole else "numbers >= 0"
+        if huge.any() or "too large" in parts[-1]:
+            rule += f" and at most {MAX_EXACT_COUNT:,} (check for a unit error or a stray exponent such as 1e20)"
         fix = "; write 0 for none, or remove the rows" if missing.any() else ""
+        if bad.any() and s[bad].astype(str).str.fullmatch(r"-?\d+,\d+").any():
+            fix += "; decimal commas (830,5) must be written with a point (830.5)"
         raise InputError(
             f"Column '{column}' in {name} has " + " and ".join(parts) + f". {what.capitalize()} must be {rule}{fix}."
         )
@@ -479,7 +521,23 @@ def read_boundaries(
     geoms = _check_geometries(geoms, index, name)
     out = gpd.GeoDataFrame(data, geometry=geoms, index=index, crs=gdf.crs)
     out.index.name = "area_id"
+    _check_degrees(out, name)
     return out
+
+
+def _check_degrees(gdf, name: str) -> None:
+    """Refuse coordinates far outside longitude/latitude ranges under a geographic (degree) CRS."""
+    crs = gdf.crs
+    if crs is None or not crs.is_geographic:
+        return
+    x0, y0, x1, y1 = gdf.total_bounds
+    if not (np.isfinite([x0, y0, x1, y1]).all() and -360 <= x0 and x1 <= 360 and -90 <= y0 and y1 <= 90):
+        raise InputError(
+            f"The boundaries file {name} says its coordinates are degrees ({crs.name}), but they span "
+            f"x {x0:.6g} to {x1:.6g} and y {y0:.6g} to {y1:.6g}, outside longitude/latitude ranges: they are "
+            "probably projected coordinates (metres) with a wrong CRS label. Set the file's real CRS (for a "
+            "shapefile, its .prj file) and export it again."
+        )
 
 
 def _default_layer(path: Path) -> str | None:
@@ -844,7 +902,8 @@ class StudyData:
         if isinstance(weeks, str):
             weeks = [weeks]
         out = [parse_week(w) for w in weeks]
-        unknown = [w for w in out if w not in set(self.weeks)]
+        known = set(self.weeks)
+        unknown = [w for w in out if w not in known]
         if unknown:
             raise ParameterError(
                 f"The 'weeks' parameter of StudyData.case_matrix must name weeks of the study "
@@ -891,7 +950,8 @@ class StudyData:
         """
         last = self.weeks[-1] if week == "latest" else parse_week(week)
         wk = weeks_ending(last, window_weeks)
-        outside = [w for w in wk if w not in set(self.weeks)]
+        known = set(self.weeks)
+        outside = [w for w in wk if w not in known]
         if outside:
             raise ParameterError(
                 f"The reporting window {wk[0]} to {wk[-1]} reaches outside the study weeks "
@@ -921,7 +981,13 @@ class StudyData:
 
 
 def _note_list(ids: Sequence, names: pd.Series) -> str:
-    return _examples(ids, fmt=lambda i: f"{names.get(i, i)} ({i})")
+    return _examples(ids, fmt=lambda i: f"{_short(names.get(i, i))} ({_short(i)})")
+
+
+def _short(value: object, limit: int = 40) -> str:
+    """A name cut for display (messages, notes); the tables keep full names."""
+    text = str(value)
+    return text if len(text) <= limit else text[: limit - 1] + "…"
 
 
 def _as_config(config):
@@ -1183,6 +1249,7 @@ class CheckReport:
     config: object
     study: StudyData
     graph: object
+    plan: object = None
 
     def to_frame(self) -> pd.DataFrame:
         """One row of headline numbers."""
@@ -1214,11 +1281,14 @@ class CheckReport:
             f"({cfg.cases.format}), {s.sources.get('population')}"
         )
         body = s.summary().split("\nNotes:")[0]
-        window = s.period_weeks(cfg.period.week, cfg.period.window_weeks)
+        window = (list(self.plan.window) if self.plan is not None
+                  else s.period_weeks(cfg.period.week, cfg.period.window_weeks))
         body += (
             f"\nReporting window: {window[0]}" + (f" to {window[-1]}" if len(window) > 1 else "")
             + f" ({len(window)} week{'s' if len(window) > 1 else ''}; [period] week = {cfg.period.week!r})"
         )
+        if self.plan is not None:
+            body += f"; {self.plan.window_cases:,} cases in the window"
         g = self.graph.summary()
         graph_line = f"Neighbour graph ({cfg.graph.method}): {g.summary()}"
         lines = head + body.splitlines() + [graph_line]
@@ -1246,12 +1316,20 @@ class CheckReport:
         return "<pre>" + html.escape(self.summary()) + "</pre>"
 
 
-def check_study(config) -> CheckReport:
-    """Load the study named by ``config``, build its neighbour graph and report.
+def check_study(config, *, period: str | None = None, today: date | None = None) -> CheckReport:
+    """Load the study named by ``config``, build its neighbour graph, run every bulletin check and report.
+
+    The checks are exactly those :func:`areamap.run_bulletin` runs before it
+    computes anything (:func:`areamap.validation.validate_run`), so inputs
+    reported usable here do not fail in the bulletin for input reasons.
 
     Parameters
     ----------
     config : RunConfig or path-like
+    period : str, optional
+        ISO week or ``"latest"`` (default ``[period] week``), as given to the bulletin.
+    today : datetime.date, optional
+        The day of the run (default today, UTC); case weeks after it are refused.
 
     Returns
     -------
@@ -1261,18 +1339,10 @@ def check_study(config) -> CheckReport:
     Raises
     ------
     InputError
-        As :func:`load_study` and :func:`areamap.graphs.build_graph`.
+        As :func:`load_study`, :func:`areamap.graphs.build_graph` and
+        :func:`areamap.validation.validate_run`.
     """
-    from .graphs import build_graph, read_extra_links
+    from .validation import prepare_run
 
-    config = _as_config(config)
-    study = load_study(config)
-    gc = config.graph
-    extra = None
-    if gc.extra_links_file is not None:
-        extra = read_extra_links(gc.extra_links_file, study.area_ids)
-    graph = build_graph(
-        study.boundaries, method=gc.method, snap=gc.snap, k=gc.k, distance=gc.distance, islands=gc.islands,
-        island_k=gc.island_k, extra_links=extra, name_column="area_name",
-    )
-    return CheckReport(config=config, study=study, graph=graph)
+    prepared = prepare_run(config, period=period, today=today)
+    return CheckReport(config=prepared.config, study=prepared.study, graph=prepared.graph, plan=prepared.plan)

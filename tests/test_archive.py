@@ -247,7 +247,7 @@ def test_version_1_archive_is_read_and_upgraded_in_place(archive):
     # an archive written by the first layout (no space-time columns) stays readable and gains them on write
     from areamap.archive import _ADDED_COLUMNS, ARCHIVE_COLUMNS
 
-    old_cols = {c: t for c, t in ARCHIVE_COLUMNS.items() if c not in _ADDED_COLUMNS[2]}
+    old_cols = {c: t for c, t in ARCHIVE_COLUMNS.items() if c not in _ADDED_COLUMNS[3]}
     with sqlite3.connect(archive.path) as con:
         con.execute("CREATE TABLE schema_version (version INTEGER NOT NULL)")
         con.execute("INSERT INTO schema_version VALUES (1)")
@@ -267,6 +267,67 @@ def test_version_1_archive_is_read_and_upgraded_in_place(archive):
     assert back["emerging"].tolist() == [True, False, False, False]
     assert back["week_observed"].tolist() == [5, 0, 1, 2]
     assert archive.compare("2026-W47", frame["flag"]).weeks_flagged.loc["A"] == 2  # history kept
+
+
+# ============================================================================ two-phase publishing
+def test_staged_period_is_invisible_until_promoted(archive):
+    archive.write_period("2026-W46", _frame([True, False, False, False]))
+    archive.stage_period("2026-W47", _frame([True, True, False, False]), run_id="run-1", out_dir="/x/bulletin")
+    # readers and the flag comparison see only published periods
+    assert archive.periods() == ["2026-W46"]
+    assert archive.read_period("2026-W47").empty
+    assert archive.pending()[["run_id", "period", "out_dir"]].values.tolist() == [["run-1", "2026-W47", "/x/bulletin"]]
+    assert archive.promote_period("run-1") == "2026-W47"
+    assert archive.periods() == ["2026-W46", "2026-W47"] and archive.pending().empty
+    assert archive.read_period("2026-W47")["flag"].tolist() == [True, True, False, False]
+    archive.verify_period("2026-W47", 4)
+    with pytest.raises(ArchiveError, match="No staged period for run run-1"):
+        archive.promote_period("run-1")
+
+
+def test_promotion_replaces_a_rerun_period_and_discard_keeps_the_old(archive):
+    archive.write_period("2026-W47", _frame([False] * 4))
+    archive.stage_period("2026-W47", _frame([True] * 4), run_id="r2")
+    assert archive.discard_pending("r2") and not archive.discard_pending("r2")
+    assert archive.read_period("2026-W47")["flag"].tolist() == [False] * 4  # untouched
+    archive.stage_period("2026-W47", _frame([True] * 4), run_id="r3")
+    archive.promote_period("r3")
+    assert archive.read_period("2026-W47")["flag"].tolist() == [True] * 4
+
+
+def test_verify_detects_a_vanished_or_incomplete_archive(archive):
+    archive.write_period("2026-W47", _frame([True, False, True, False]))
+    with pytest.raises(ArchiveError, match="does not hold the period 2026-W47 just written"):
+        archive.verify_period("2026-W47", 5)
+    archive.path.unlink()
+    with pytest.raises(ArchiveError, match="disappeared"):
+        archive.verify_period("2026-W47", 4)
+
+
+def test_version_1_archive_is_read_and_upgraded(archive):
+    archive.write_period("2026-W46", _frame([True, False, False, False]))
+    with sqlite3.connect(archive.path) as con:  # make it look like a version-1 archive
+        con.execute("DROP TABLE pending_area_results")
+        con.execute("DROP TABLE pending_periods")
+        con.execute("UPDATE schema_version SET version = 1")
+    assert archive.periods() == ["2026-W46"] and archive.pending().empty
+    archive.stage_period("2026-W47", _frame([True] * 4), run_id="r")
+    archive.promote_period("r")
+    with sqlite3.connect(archive.path) as con:
+        assert con.execute("SELECT version FROM schema_version").fetchone() == (SCHEMA_VERSION,)
+    assert archive.periods() == ["2026-W46", "2026-W47"]
+
+
+def test_archive_permissions_are_kept(archive):
+    import os
+    import stat
+
+    archive.write_period("2026-W46", _frame([True, False, False, False]))
+    os.chmod(archive.path, 0o600)
+    archive.stage_period("2026-W47", _frame([True] * 4), run_id="r")
+    archive.promote_period("r")
+    assert stat.S_IMODE(os.stat(archive.path).st_mode) == 0o600
+
 
 # ----------------------------------------------------------------------- settings per period
 def test_settings_are_recorded_and_a_change_stops(tmp_path):

@@ -229,7 +229,9 @@ def _panel(driver) -> tuple[str, dict[str, str]]:
 
 def _expected_panel(row) -> dict[str, str]:
     hidden = 1 <= row["observed"] < 5
-    return {"observed": "<5" if hidden else str(int(row["observed"])), "expected": f"{row['expected']:.1f}",
+    if hidden:  # the page withholds a suppressed district's expected count and estimates (disclosure rule)
+        return {"observed": "<5", "expected": "withheld", "rr": "withheld"}
+    return {"observed": str(int(row["observed"])), "expected": f"{row['expected']:.1f}",
             "rr": f"{row['rr']:.2f} ({row['rr_low']:.2f}–{row['rr_high']:.2f})"}
 
 

@@ -14,7 +14,7 @@ import pytest
 from numpy.testing import assert_allclose
 
 from areamap.bulletin import AREA_COLUMNS, FlagRules, file_sha256, flag_areas, suppress_counts
-from areamap.bulletin.publish import _check_out_dir, _publish
+from areamap.bulletin._folder import MARKER_NAME, check_replaceable, swap_in, write_marker
 from areamap.errors import InputError, ParameterError
 
 
@@ -151,11 +151,19 @@ def test_file_sha256_matches_hashlib(tmp_path):
     assert file_sha256(p) == hashlib.sha256(data).hexdigest()
 
 
+def _check_out_dir(out, inputs, *, public=False, replace_public=False):
+    check_replaceable(out, inputs, public=public, replace_public=replace_public)
+
+
 def test_output_folder_checks(tmp_path):
     out = tmp_path / "bulletin"
     _check_out_dir(out, [])  # missing: fine
     out.mkdir()
+    _check_out_dir(out, [])  # empty: fine
     (out / "index.html").write_text("old")
+    with pytest.raises(InputError, match="was not written by areamap"):
+        _check_out_dir(out, [])  # a hand-written page is never replaced
+    write_marker(out, {"run_id": "x", "period": "2026-W47", "public": False})
     _check_out_dir(out, [])  # a previous bulletin: fine
     (out / "notes.txt").write_text("mine")
     with pytest.raises(InputError, match="holds files that are not bulletin outputs \\(notes.txt\\)"):
@@ -176,10 +184,11 @@ def test_publish_replaces_the_previous_folder(tmp_path):
     tmp = tmp_path / ".bulletin.tmp-1"
     tmp.mkdir()
     (tmp / "index.html").write_text("new")
-    _publish(tmp, out)
+    previous = tmp_path / ".bulletin.previous-1"
+    assert swap_in(tmp, out, previous)
     assert (out / "index.html").read_text() == "new"
+    assert (previous / "index.html").read_text() == "old"
     assert not tmp.exists()
-    assert sorted(p.name for p in tmp_path.iterdir()) == ["bulletin"]  # no backup left behind
 
 
 # ============================================================================ end to end on the demo region
@@ -222,7 +231,8 @@ def test_outputs_exist_with_named_columns(demo_run):
     import pyogrio
 
     out, result = demo_run["out"], demo_run["result"]
-    assert sorted(p.name for p in out.iterdir()) == sorted(["index.html", "areas.csv", "areas.gpkg", "run.json"])
+    assert sorted(p.name for p in out.iterdir()) == sorted(["index.html", "areas.csv", "areas.gpkg", "run.json",
+                                                          MARKER_NAME])
     table = pd.read_csv(out / "areas.csv", dtype={"area_id": str})
     assert list(table.columns) == list(AREA_COLUMNS)
     assert sorted(p.name for p in demo_run["root"].iterdir()) == ["2026-W46", "2026-W47", "latest.html"]
@@ -423,7 +433,8 @@ def test_public_tables_suppress_small_counts_and_rerun_is_repeatable(demo_run, t
         # the newest week's count of the space-time model is suppressed the same way, with its mid-p values
         small_week = full.index[(full["week_observed"] >= 1) & (full["week_observed"] <= 4)]
         assert len(small_week) > 0
-        assert (table.loc[small_week, "week_observed"].astype(str) == "<5").all()
+        # "<5", or "withheld" where the window's count (the same week by default) is suppressed too
+        assert table.loc[small_week, "week_observed"].astype(str).isin(["<5", "withheld"]).all()
         assert table.loc[small_week, ["forecast_midp", "forecast_q"]].isna().all().all()
 
 

@@ -20,7 +20,7 @@ from areamap.demo import write_demo
 from areamap.errors import GeometryRepairedWarning
 
 CASES = "area_id,week,cases\nA,2026-W46,3\nB,2026-W47,1\nC,2026-W47,2\n"
-POPULATION = "area_id,population\nA,1000\nB,800\nC,1200\n"
+POPULATION = "area_id,population\nA,1000\nB,800\nC,1200\nD,900\n"
 CONFIG = """\
 [boundaries]
 file = "areas.gpkg"
@@ -33,8 +33,9 @@ file = "population.csv"
 
 def tiny(folder: Path, *, cases: str | bytes = CASES, population: str = POPULATION, config: str = CONFIG,
          geoms=None) -> Path:
-    geoms = geoms or [shapely.box(0, 0, 1, 1), shapely.box(1, 0, 2, 1), shapely.box(2, 0, 3, 1)]
-    gpd.GeoDataFrame({"area_id": ["A", "B", "C"]}, geometry=geoms, crs="EPSG:3035").to_file(folder / "areas.gpkg")
+    # four districts: the fewest a bulletin (and so 'areamap check') accepts
+    geoms = geoms or [shapely.box(0, 0, 1, 1), shapely.box(1, 0, 2, 1), shapely.box(2, 0, 3, 1), shapely.box(3, 0, 4, 1)]
+    gpd.GeoDataFrame({"area_id": ["A", "B", "C", "D"]}, geometry=geoms, crs="EPSG:3035").to_file(folder / "areas.gpkg")
     if isinstance(cases, bytes):
         (folder / "cases.csv").write_bytes(cases)
     else:
@@ -87,7 +88,7 @@ def test_check_demo_exits_zero(demo_config, capsys):
 def test_check_tiny(tmp_path, capsys):
     assert cli.main(["check", str(tiny(tmp_path))]) == 0
     out = capsys.readouterr().out
-    assert "Areas: 3" in out and "Total cases: 6" in out and "Age groups: all" in out
+    assert "Areas: 4" in out and "Total cases: 6" in out and "Age groups: all" in out
 
 
 @pytest.mark.parametrize(
@@ -99,10 +100,10 @@ def test_check_tiny(tmp_path, capsys):
         ({"cases": ""}, "error: The cases file cases.csv is empty (0 bytes)"),
         ({"cases": "area_id,week,cases\n"}, "but no data rows"),
         ({"cases": "área_id,week,cases\nA,2026-W47,1\n".encode("latin-1")}, 'set encoding = "latin-1"'),
-        ({"population": "area_id,population\nA,1000\nB,800\n"}, "have no population in population.csv (C)"),
+        ({"population": "area_id,population\nA,1000\nB,800\nD,900\n"}, "have no population in population.csv (C)"),
         ({"config": CONFIG + "[clusters]\npermutatons = 99\n"}, "Did you mean 'permutations'?"),
         ({"config": CONFIG + '[graph]\nmethod = "knn"\nk = "2"\n'}, "Key 'k' in [graph] of run.toml must be an integer"),
-        ({"geoms": [shapely.box(0, 0, 1, 1), shapely.Polygon(), shapely.box(2, 0, 3, 1)]},
+        ({"geoms": [shapely.box(0, 0, 1, 1), shapely.Polygon(), shapely.box(2, 0, 3, 1), shapely.box(3, 0, 4, 1)]},
          "have a missing or empty geometry (B)"),
     ],
 )
@@ -122,7 +123,7 @@ def test_missing_config_exit_2(tmp_path, capsys):
 
 def test_warnings_are_one_line(tmp_path, capsys):
     spiky = shapely.Polygon([(2, 0), (3, 0), (3, 0.5), (3.5, 0.5), (3, 0.5), (3, 1), (2, 1)])
-    cfg = tiny(tmp_path, geoms=[shapely.box(0, 0, 1, 1), shapely.box(1, 0, 2, 1), spiky])
+    cfg = tiny(tmp_path, geoms=[shapely.box(0, 0, 1, 1), shapely.box(1, 0, 2, 1), spiky, shapely.box(3, 0, 4, 1)])
     assert cli.main(["check", str(cfg)]) == 0
     err = capsys.readouterr().err
     assert err.startswith("warning: Repaired 1 invalid geometries in areas.gpkg (C)")
@@ -130,7 +131,7 @@ def test_warnings_are_one_line(tmp_path, capsys):
 
 
 def test_internal_error_exit_1(tmp_path, capsys, monkeypatch):
-    def boom(config):
+    def boom(config, **kwargs):
         raise RuntimeError("something broke\nsecond line")
 
     monkeypatch.setattr("areamap.intake.check_study", boom)

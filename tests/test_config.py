@@ -101,9 +101,9 @@ def test_unknown_key_without_close_match_lists_valid_keys(folder):
     ("extra", "pattern"),
     [
         ('[clusters]\npermutations = "999"\n',
-         r"Key 'permutations' in \[clusters\] of run.toml must be an integer >= 19. Got '999' \(a string\) instead."),
-        ("[clusters]\npermutations = true\n", r"must be an integer >= 19. Got True \(a boolean\)"),
-        ("[clusters]\npermutations = 9\n", r"must be an integer >= 19. Got 9"),
+         r"Key 'permutations' in \[clusters\] of run.toml must be an integer in \[19, 999999\]\. Got '999' \(a string\) instead."),
+        ("[clusters]\npermutations = true\n", r"must be an integer in \[19, 999999\]\. Got True \(a boolean\)"),
+        ("[clusters]\npermutations = 9\n", r"must be an integer in \[19, 999999\]\. Got 9"),
         ("[clusters]\nalpha = 1.5\n", r"Key 'alpha' in \[clusters\] .* must be a number in \(0, 1\). Got 1.5"),
         ('[graph]\nmethod = "quen"\n', r"must be one of 'queen', 'rook', 'knn', 'distance'.*Did you mean 'queen'\?"),
         ("[graph]\nsnap = -1\n", r"Key 'snap' .* must be a number >= 0"),

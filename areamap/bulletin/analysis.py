@@ -49,7 +49,7 @@ import pandas as pd
 
 from .._params import check_interval, check_positive_int
 from ..archive import FlagChanges, HistoryArchive
-from ..errors import AreamapError, AreamapWarning, InputError, ParameterError, format_examples
+from ..errors import AreamapWarning, InputError, ParameterError, format_examples
 from ._spacetime_step import SPACETIME_COLUMNS
 
 __all__ = [
@@ -80,8 +80,7 @@ KRIGING_COLUMNS = ("kriged_rr", "kriged_rr_low", "kriged_rr_high")
 
 #: Columns withheld (blank) in public tables for areas whose count is suppressed:
 #: with the expected count published, each of them gives the count back exactly.
-_DISCLOSING_COLUMNS = ("sir", "sir_low", "sir_high", "eb_rr", "rate_per_100k", "rate_low", "rate_high",
-                       *STANDARDIZED_RATE_COLUMNS)
+from .disclosure import DISCLOSING_COLUMNS as _DISCLOSING_COLUMNS  # noqa: E402 - one list, in disclosure
 
 _ADJUST_LABEL = {"fdr": "FDR q", "bonferroni": "Bonferroni-adjusted p", "none": "unadjusted p"}
 
@@ -521,38 +520,6 @@ class _Steps:
             self._name = None
 
 
-def _resolve_period(study, requested: str | None, config) -> tuple[str, list[str]]:
-    """The period key (last week of the window) and the weeks of the window."""
-    from ..intake import parse_week, weeks_ending
-
-    k = config.period.window_weeks
-    wanted = requested if requested is not None else config.period.week
-    if not study.weeks:
-        raise InputError("The cases file has no weeks with data; nothing to report.")
-    if wanted in (None, "latest"):
-        key = study.weeks[-1]
-    else:
-        try:
-            key = parse_week(wanted)
-        except (AreamapError, ValueError):
-            raise InputError(
-                f"The period {wanted!r} is not an ISO week. Give it as YYYY-Www, e.g. --period 2026-W47."
-            ) from None
-    if key not in study.weeks:
-        raise InputError(
-            f"The period {key} is outside the weeks of the cases file ({study.weeks[0]} to {study.weeks[-1]}). "
-            "Choose a week within that range (or 'latest')."
-        )
-    window = list(weeks_ending(key, k))
-    before = [w for w in window if w < study.weeks[0]]
-    if before:
-        raise InputError(
-            f"The rolling window of {k} weeks ending {key} starts at {window[0]}, before the first week of the "
-            f"cases file ({study.weeks[0]}). Choose a later period or a shorter [period] window_weeks."
-        )
-    return key, window
-
-
 def _reference_rates(config, study) -> pd.Series | None:
     """External reference rates per person per week by age group, or None (internal reference)."""
     if config.standardization.reference != "external":
@@ -584,6 +551,7 @@ def analyse_period(
     *,
     period: str | None = None,
     progress: Progress | None = None,
+    today: _dt.date | None = None,
 ) -> PeriodAnalysis:
     """Analyse one bulletin period and return its results; write nothing.
 
@@ -601,6 +569,9 @@ def analyse_period(
         default ``[period] week`` of the configuration.
     progress : callable, optional
         Called with a short message at the start of each step.
+    today : datetime.date, optional
+        The day of the run (default today, UTC); case rows dated after it are
+        refused unless ``[checks] allow_future_weeks``.
 
     Returns
     -------
@@ -633,7 +604,7 @@ def analyse_period(
 
     t_start = time.perf_counter()
     run_time = _dt.datetime.now(_dt.timezone.utc).replace(microsecond=0)
-    steps = _Steps(progress, 10)
+    steps = _Steps(progress, 9)
     steps.start("configuration", "reading the configuration")
     cfg = _as_config(config, "analyse_period")
     inputs = _input_files(cfg)
@@ -646,24 +617,17 @@ def analyse_period(
 
     run_warnings: list[str] = []
     with _recording_warnings(run_warnings):
-        steps.start("intake", "reading boundaries, cases and population")
-        from ..intake import load_study, week_bounds
+        steps.start("intake", "reading the inputs, building the neighbour graph and checking the run")
+        from ..validation import prepare_run
 
-        study = load_study(cfg)
-        key, window = _resolve_period(study, period, cfg)
-        start_day = week_bounds(window[0])[0]
-        end_day = week_bounds(window[-1])[1]
+        # the same function as 'areamap check': every input check happens here, before any computing
+        prepared = prepare_run(cfg, period=period, today=today)
+        study, graph, plan = prepared.study, prepared.graph, prepared.plan
+        key, window = plan.period, list(plan.window)
+        start_day, end_day = plan.start, plan.end
         boundaries = study.boundaries
         ids = boundaries.index
         names = boundaries["area_name"].astype(str)
-
-        steps.start("graph", f"building the {cfg.graph.method} neighbour graph")
-        from ..graphs import build_graph, read_extra_links
-
-        g = cfg.graph
-        extra = read_extra_links(g.extra_links_file, ids) if g.extra_links_file is not None else None
-        graph = build_graph(boundaries, method=g.method, snap=g.snap, k=g.k, distance=g.distance,
-                            islands=g.islands, island_k=g.island_k, extra_links=extra, name_column="area_name")
 
         steps.start("rates", "expected counts and standardized ratios")
         from ..rates import expected_counts, standardized_ratio
@@ -682,8 +646,8 @@ def analyse_period(
         if not (expected > 0).all():
             bad = ids[~(expected > 0).to_numpy()]
             raise InputError(
-                f"{len(bad)} district(s) have an expected count of zero ({format_examples(bad)}), usually because "
-                "their population is zero. Remove them from the boundaries or give them a population."
+                f"{len(bad)} district(s) have an expected count of zero ({format_examples(bad)}): the reference "
+                "rates are zero for every age group they have people in. Check the population and reference rates."
             )
         sr = standardized_ratio(observed, expected).to_frame()
         rate_cols = _rates(cases, pop, study.standard_population)
@@ -734,22 +698,11 @@ def analyse_period(
         table["population"] = population
         for c_, v_ in rate_cols.items():
             table[c_] = v_
-        table["sir"] = sr["ratio"].to_numpy(float)
-        table["sir_low"] = sr["low"].to_numpy(float)
-        table["sir_high"] = sr["high"].to_numpy(float)
-        table["eb_rr"] = np.asarray(eb.rr_mean, dtype=float)
-        table["rr"] = car_frame["rr_mean"].to_numpy(float)
-        table["rr_low"] = car_frame["rr_low"].to_numpy(float)
-        table["rr_high"] = car_frame["rr_high"].to_numpy(float)
-        table["p_above_1"] = car_frame["p_above_1"].to_numpy(float)
+        threshold_differs = not math.isclose(cfg.smoothing.threshold, 1.0)
+        _set_estimates(table, sr, eb, car_frame, local, threshold_differs=threshold_differs)
         if cfg.smoothing.kriging:
             for col, values in _kriged_columns(kriging, len(ids)).items():
                 table[col] = values
-        threshold_differs = not math.isclose(cfg.smoothing.threshold, 1.0)
-        if threshold_differs:
-            table["p_above_threshold"] = car_frame["p_above_threshold"].to_numpy(float)
-        table["cluster"] = local["cluster"].astype(str).to_numpy()
-        table["cluster_p"] = local["p_adjusted"].to_numpy(float)
         zone_high = np.zeros(len(ids), dtype=bool)
         if scan_result is not None:
             member = scan_result.district_membership().reindex(ids)
@@ -890,6 +843,22 @@ def _recording_warnings(store: list[str]):
             if issubclass(w.category, AreamapWarning) and str(w.message) not in store:
                 store.append(str(w.message))
             warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+
+
+def _set_estimates(table: pd.DataFrame, sr, eb, car_frame, local, *, threshold_differs: bool) -> None:
+    """Fill the ratio, smoothing and cluster columns of a per-area table (in place), in AREA_COLUMNS order."""
+    table["sir"] = sr["ratio"].to_numpy(float)
+    table["sir_low"] = sr["low"].to_numpy(float)
+    table["sir_high"] = sr["high"].to_numpy(float)
+    table["eb_rr"] = np.asarray(eb.rr_mean, dtype=float)
+    table["rr"] = car_frame["rr_mean"].to_numpy(float)
+    table["rr_low"] = car_frame["rr_low"].to_numpy(float)
+    table["rr_high"] = car_frame["rr_high"].to_numpy(float)
+    table["p_above_1"] = car_frame["p_above_1"].to_numpy(float)
+    if threshold_differs:
+        table["p_above_threshold"] = car_frame["p_above_threshold"].to_numpy(float)
+    table["cluster"] = local["cluster"].astype(str).to_numpy()
+    table["cluster_p"] = local["p_adjusted"].to_numpy(float)
 
 
 def period_settings(cfg) -> dict:

@@ -89,9 +89,16 @@ def bulletin_figures(analysis, words: Wording) -> tuple[list[dict], list[str]]:
     from ..maps import _map_aspect
 
     cfg = analysis.config
+    from .disclosure import short_name, suppressed_mask
+
     gdf = analysis.areas.copy()
     names = gdf["area_name"].astype(str)
-    gdf["area_name"] = names.map(_plain)
+    # names cut to 40 characters: a very long name must not stretch a figure (tables keep the full name)
+    gdf["area_name"] = names.map(lambda t: _plain(short_name(t)))
+    # raw ratios of suppressed districts would give their counts back (map class, funnel position)
+    hide = suppressed_mask(gdf["observed"], cfg.output.suppress_below)
+    if hide.any():
+        gdf.loc[hide, ["sir", "sir_low", "sir_high"]] = np.nan
     source = _plain(cfg.data_source) if cfg.data_source else None
     period_text = (f"{analysis.period} ({words.date(analysis.period_start)} – "
                    f"{words.date(analysis.period_end)})")
@@ -151,7 +158,8 @@ def bulletin_figures(analysis, words: Wording) -> tuple[list[dict], list[str]]:
                   n_ns=int((cl == "not significant").sum()))))
 
         fig, ax = plt.subplots(figsize=(_MAP_WIDTH_IN, 4.4), layout="constrained")
-        maps.funnel_plot(gdf["observed"], gdf["expected"], labels=gdf["area_name"], ax=ax)
+        shown = gdf.loc[~hide]
+        maps.funnel_plot(shown["observed"], shown["expected"], labels=shown["area_name"], ax=ax)
         lo95, hi95 = maps.funnel_limits(gdf["expected"].to_numpy(float), level=0.95)
         lo998, hi998 = maps.funnel_limits(gdf["expected"].to_numpy(float), level=0.998)
         out95 = ((sir < lo95) | (sir > hi95)).to_numpy()

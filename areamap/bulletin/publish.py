@@ -7,12 +7,16 @@ folder, then the period written to the archive in one transaction while the
 folder is moved into place. A run that fails at any step leaves the previous
 bulletin folder, the archive and the inputs untouched.
 
-Disclosure caution: complementary suppression is not done; totals or
-neighbouring tables may still allow a small count to be back-calculated.
+With ``public=True`` the files are rendered from
+:func:`~areamap.bulletin.disclosure.public_analysis` (estimates computed
+without the suppressed counts) and the disclosure rule of
+:mod:`~areamap.bulletin.disclosure` applies; the archive always keeps the full
+analysis.
 """
 
 from __future__ import annotations
 
+import contextlib
 import datetime as _dt
 import html
 import os
@@ -26,15 +30,15 @@ from pathlib import Path
 import pandas as pd
 
 from ..archive import FlagChanges, HistoryArchive
-from ..errors import InputError, ParameterError, format_examples
+from ..errors import InputError, ParameterError
+from . import _folder
+from ._folder import MARKER_NAME, OUTPUT_FILES
 from .analysis import Progress, _as_config, _input_files, _scan_lines, _Steps, analyse_period
+from .disclosure import public_analysis
 from .render import render_bulletin
 
-__all__ = ["OUTPUT_FILES", "BulletinResult", "period_folder", "point_to_latest", "run_bulletin"]
+__all__ = ["OUTPUT_FILES", "MARKER_NAME", "BulletinResult", "period_folder", "point_to_latest", "run_bulletin"]
 
-#: Files a bulletin folder holds; an existing output folder is only replaced when it
-#: contains nothing else.
-OUTPUT_FILES = ("index.html", "areas.csv", "areas.gpkg", "run.json")
 
 
 # ============================================================================ result
@@ -64,6 +68,10 @@ class BulletinResult:
         The content of run.json.
     public : bool
         Whether the tables were written with small counts suppressed.
+    notes : tuple of str
+        What publishing found and did besides the normal swap: a followed
+        symbolic link, leftovers of interrupted runs restored or removed, an
+        archive entry completed or discarded.
     """
 
     out: Path
@@ -77,6 +85,7 @@ class BulletinResult:
     car_fit: object
     run_info: dict = field(repr=False)
     public: bool = False
+    notes: tuple = ()
 
     @property
     def files(self) -> dict[str, Path]:
@@ -107,6 +116,7 @@ class BulletinResult:
             f"(expected {m['expected']:.3f}, permutation p = {m['p_value']:.3g}).",
             *_scan_lines(self.run_info),
             f"Outputs: {self.out}" + (" (public: small counts suppressed)" if self.public else ""),
+            *(f"Note: {n}" for n in self.notes),
         ])
 
     def _repr_html_(self) -> str:
@@ -114,7 +124,7 @@ class BulletinResult:
         return f"<ul>{lines}</ul>"
 
 
-# ============================================================================ output folder
+# ============================================================================ output folders
 def period_folder(root: str | Path, period: str) -> Path:
     """The folder of one period under an output root: ``root / "2026-W47"``.
 
@@ -172,45 +182,88 @@ def _check_root(root: Path) -> None:
         raise InputError(f"The output path {root} exists and is a file. Give a folder for the bulletin (--out DIR).")
 
 
-def _check_out_dir(out: Path, inputs: list[tuple[str, Path]]) -> None:
-    """Refuse output folders that would overwrite anything but a previous bulletin."""
-    if out.exists() and not out.is_dir():
-        raise InputError(f"The output path {out} exists and is a file. Give a folder for the bulletin (--out DIR).")
-    resolved = out.resolve()
-    for role, p in inputs:
+
+# ============================================================================ publishing
+def _publish(analysis, out_dir: Path, *, public: bool, replace_public: bool, started: float,
+             steps: _Steps, inputs: list, today=None) -> tuple[dict, list[str]]:
+    """Render into a temporary sibling, stage in the archive, swap the folder in, promote, verify, clean up.
+
+    The folder and the archive change together or not at all: see :mod:`areamap.bulletin._folder` and
+    :meth:`~areamap.archive.HistoryArchive.stage_period`.
+    """
+    from .. import __version__
+
+    cfg = analysis.config
+    archive = HistoryArchive(cfg.output.archive_path)
+    notes: list[str] = []
+    with _folder.publish_lock(out_dir, timeout=archive.timeout):
+        notes += _recover(out_dir, archive)
+        _folder.check_replaceable(out_dir, inputs, public=public, replace_public=replace_public)
+        mode = _folder.folder_mode(out_dir)
+        run_id = uuid.uuid4().hex
+        tmp = Path(tempfile.mkdtemp(prefix=f".{out_dir.name}.tmp-{run_id[:8]}-", dir=out_dir.parent))
+        previous = out_dir.parent / f".{out_dir.name}.previous-{run_id[:8]}"
+        swapped = had_previous = False
         try:
-            Path(p).resolve().relative_to(resolved)
-        except ValueError:
-            continue
-        raise InputError(
-            f"The output folder {out} contains the {role} file {p}; a bulletin run replaces its output folder. "
-            "Choose a separate output folder (--out DIR)."
-        )
-    if out.is_dir():
-        extra = sorted(p.name for p in out.iterdir() if p.name not in OUTPUT_FILES)
-        if extra:
-            raise InputError(
-                f"The output folder {out} holds files that are not bulletin outputs ({format_examples(extra)}). "
-                "A bulletin run replaces the whole folder, so choose an empty or new folder (--out DIR), "
-                "or the folder of a previous bulletin."
-            )
+            # the replaced folder's permissions; a new folder follows the umask (mkdtemp makes it private)
+            os.chmod(tmp, mode if mode is not None else 0o777 & ~_umask())
+            _folder.write_marker(tmp, {"run_id": run_id, "period": analysis.period, "public": public,
+                                       "version": __version__})
+            # a public run publishes estimates computed without the suppressed counts (disclosure rule)
+            shown = public_analysis(analysis, today=today) if public else analysis
+            run_info = render_bulletin(shown, tmp, public=public, started=started)
+
+            steps.start("archive", "archiving the period and publishing")
+            table = analysis.to_frame()
+            archive.stage_period(analysis.period, table, run_id=run_id, out_dir=out_dir,
+                                 period_start=analysis.period_start, period_end=analysis.period_end,
+                                 window_weeks=analysis.window_weeks, tool_version=__version__,
+                                 settings=analysis.settings, series=cfg.output.series)
+            had_previous = _folder.swap_in(tmp, out_dir, previous)
+            swapped = True
+            archive.promote_period(run_id)
+            archive.verify_period(analysis.period, len(table))
+        except BaseException:
+            if swapped:
+                _undo(out_dir, previous if had_previous else None, tmp)
+            with contextlib.suppress(Exception):
+                archive.discard_pending(run_id)
+            shutil.rmtree(tmp, ignore_errors=True)
+            raise
+        # committed and verified: the old folder is no longer needed
+        shutil.rmtree(previous, ignore_errors=True)
+    return run_info, notes
 
 
-def _publish(tmp: Path, out: Path) -> None:
-    """Move the finished temporary folder into place, replacing a previous bulletin."""
-    backup = None
-    if out.exists():
-        backup = out.parent / f".{out.name}.previous-{uuid.uuid4().hex[:8]}"
-        os.replace(out, backup)
-    try:
-        os.replace(tmp, out)
-    except OSError:
-        if backup is not None:
-            os.replace(backup, out)
-        raise
-    if backup is not None:
-        shutil.rmtree(backup, ignore_errors=True)
+def _undo(out_dir: Path, previous: Path | None, discard: Path) -> None:
+    """Put the replaced folder back (or remove a first publication) after a failed archive commit."""
+    if previous is not None:
+        _folder.swap_back(out_dir, previous, discard)
+    elif out_dir.exists():
+        os.rename(out_dir, discard)
 
+
+def _recover(out_dir: Path, archive: HistoryArchive) -> list[str]:
+    """Finish or undo what an interrupted run left: the output folder, leftovers, staged archive rows."""
+    notes = _folder.clean_leftovers(out_dir)
+    if not archive.path.exists():
+        return notes
+    pending = archive.pending()
+    if not len(pending):
+        return notes
+    marker = _folder.read_marker(out_dir) if out_dir.is_dir() else None
+    published_run = marker.get("run_id") if marker else None
+    for row in pending.itertuples():
+        if row.out_dir is None or Path(row.out_dir) != out_dir:
+            continue  # another output folder's run: its own next run decides
+        if row.run_id == published_run:
+            archive.promote_period(row.run_id)
+            notes.append(f"Completed the archive entry of {row.period}: an interrupted run had published the "
+                         "folder but not yet committed the archive.")
+        else:
+            archive.discard_pending(row.run_id)
+            notes.append(f"Discarded an unpublished archive entry of {row.period} left by an interrupted run.")
+    return notes
 
 
 def run_bulletin(
@@ -219,7 +272,9 @@ def run_bulletin(
     period: str | None = None,
     out: str | Path | None = None,
     public: bool = False,
+    replace_public: bool = False,
     progress: Progress | None = None,
+    today: _dt.date | None = None,
 ) -> BulletinResult:
     """Run the whole bulletin for one period and publish its folder.
 
@@ -235,15 +290,21 @@ def run_bulletin(
         With ``[output] per_period = true`` (the default) each period goes
         into its own subfolder (``out/2026-W47/``) and ``out/latest.html``
         points to the newest period; otherwise the files go straight into
-        ``out``. An existing period folder is replaced only when it holds
-        nothing but bulletin outputs.
+        ``out``. An existing (period) folder is replaced only when areamap
+        wrote it (see :mod:`areamap.bulletin._folder`).
     public : bool, default=False
         Suppress small counts (1 to ``suppress_below - 1``) in areas.csv and
         areas.gpkg too (the HTML always suppresses them) and withhold the
         ratios that would reveal them (sir, sir_low, sir_high, eb_rr).
+    replace_public : bool, default=False
+        Allow a non-public run to replace a folder written by a public run
+        (refused otherwise: it would replace suppressed tables by unsuppressed ones).
     progress : callable, optional
         Called with a short message at the start of each step (the CLI prints
         them on a terminal).
+    today : datetime.date, optional
+        The day of the run (default today, UTC); case weeks after it are refused
+        unless ``[checks] allow_future_weeks``.
 
     Returns
     -------
@@ -273,47 +334,41 @@ def run_bulletin(
     cfg = _as_config(config, "run_bulletin")
     if not isinstance(public, bool):
         raise ParameterError(f"The 'public' parameter of run_bulletin must be True or False. Got {public!r} instead.")
+    if not isinstance(replace_public, bool):
+        raise ParameterError("The 'replace_public' parameter of run_bulletin must be True or False. "
+                             f"Got {replace_public!r} instead.")
     root = Path(out) if out is not None else cfg.base_dir / "bulletin"
-    root = root.expanduser().absolute()
-    protected = [*_input_files(cfg), ("history archive", Path(cfg.output.archive_path))]
+    root, out_notes = _folder.resolve_out(root.expanduser().absolute())
+    inputs = [*_input_files(cfg), ("history archive", Path(cfg.output.archive_path))]
     per_period = cfg.output.per_period
+    # refuse an unusable folder before the (long) analysis; checked again under the publishing lock
     if per_period:
         _check_root(root)
     else:
-        _check_out_dir(root, protected)
+        _folder.check_replaceable(root, inputs, public=public, replace_public=replace_public)
 
-    analysis = analyse_period(cfg, period=period, progress=progress)
+    analysis = analyse_period(cfg, period=period, progress=progress, today=today)
     out_dir = period_folder(root, analysis.period) if per_period else root
     if per_period:
-        _check_out_dir(out_dir, protected)
+        out_dir, period_notes = _folder.resolve_out(out_dir)
+        out_notes += period_notes
+        _folder.check_replaceable(out_dir, inputs, public=public, replace_public=replace_public)
     steps = _Steps(progress, 10)
     steps.count = 8
     steps.start("outputs", "writing index.html, areas.csv, areas.gpkg, run.json")
-    tmp = Path(tempfile.mkdtemp(prefix=f".{out_dir.name}.tmp-", dir=_parent_for(out_dir)))
-    os.chmod(tmp, 0o777 & ~_umask())  # mkdtemp makes it private; the published folder follows the umask
-    try:
-        run_info = render_bulletin(analysis, tmp, public=public, started=t_start)
-
-        steps.start("archive", "archiving the period and publishing")
-        # the folder is moved into place while the archive's write lock is held: two runs publish in turn,
-        # and a failed move rolls the archive back
-        table = analysis.to_frame()
-        HistoryArchive(cfg.output.archive_path).write_period(
-            analysis.period, table, period_start=analysis.period_start, period_end=analysis.period_end,
-            window_weeks=analysis.window_weeks, tool_version=__version__,
-            settings=analysis.settings, series=cfg.output.series,
-            before_commit=lambda: _publish(tmp, out_dir))
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise
+    _parent_for(out_dir)
+    run_info, recovered = _publish(analysis, out_dir, public=public, replace_public=replace_public,
+                                   started=t_start, steps=steps, inputs=inputs, today=today)
     if per_period:
         point_to_latest(root)
     steps.stop()
     run_info["timings_seconds"]["archive"] = steps.timings.get("archive")
+    run_info["publishing_notes"] = [*out_notes, *recovered]
     return BulletinResult(out=out_dir, period=analysis.period, period_start=analysis.period_start,
                           period_end=analysis.period_end, window_weeks=analysis.window_weeks,
                           areas=analysis.areas, morans_i=analysis.morans_i, changes=analysis.changes,
-                          car_fit=analysis.car_fit, run_info=run_info, public=public)
+                          car_fit=analysis.car_fit, run_info=run_info, public=public,
+                          notes=tuple(run_info["publishing_notes"]))
 
 
 def _umask() -> int:

@@ -19,7 +19,6 @@ import pandas as pd
 
 from .analysis import (
     _ADJUST_LABEL,
-    _DISCLOSING_COLUMNS,
     AREA_COLUMNS,
     KRIGING_COLUMNS,
     STANDARDIZED_RATE_COLUMNS,
@@ -28,9 +27,9 @@ from .analysis import (
     _fmt_p,
     _fmt_prob,
     _jsonable,
-    _suppressed_mask,
     suppress_counts,
 )
+from .disclosure import neutralise_formulas, public_run_info, public_table
 
 __all__ = ["render_bulletin"]
 
@@ -75,6 +74,8 @@ def render_bulletin(analysis: PeriodAnalysis, folder: str | Path, *, public: boo
     words = load_wording(getattr(out, "audience", "specialist"), date_format=getattr(out, "date_format", "%Y-%m-%d"),
                          strings_file=getattr(out, "strings_file", None))
     info = dict(run_info if run_info is not None else analysis.run_info)
+    if public:
+        info = public_run_info(info)
     info["public"] = public
     info["audience"] = words.audience
     timings = info["timings_seconds"] = dict(info.get("timings_seconds", {}))
@@ -126,25 +127,17 @@ def _write_tables(areas, folder: Path, *, public: bool, suppress_below: int, thr
         at = cols.index("rate_high") + 1
         cols[at:at] = list(STANDARDIZED_RATE_COLUMNS)
     frame = areas[cols + ["geometry"]].copy()
-    if public and suppress_below > 1:
-        hide = _suppressed_mask(frame["observed"], suppress_below)
-        frame["observed"] = suppress_counts(frame["observed"], threshold=suppress_below).to_numpy(object)
-        prev = frame["observed_previous"]
-        shown = suppress_counts(prev.fillna(0).astype(np.int64), threshold=suppress_below).to_numpy(object)
-        frame["observed_previous"] = np.where(prev.isna(), None, shown)
-        for c in _DISCLOSING_COLUMNS:
-            if c in frame.columns:
-                frame.loc[hide, c] = np.nan
-        # the newest week's count: suppressed like the window's, with the columns that give it back
-        from ._spacetime_step import WEEK_DISCLOSING_COLUMNS
-
-        hide_week = _suppressed_mask(frame["week_observed"], suppress_below)
-        frame["week_observed"] = suppress_counts(frame["week_observed"], threshold=suppress_below).to_numpy(object)
-        for c in WEEK_DISCLOSING_COLUMNS:
-            frame.loc[hide_week, c] = np.nan
+    if public:
+        prev = frame["observed_previous"] if "observed_previous" in frame.columns else None
+        frame = public_table(frame, suppress_below=suppress_below)
+        if prev is not None and suppress_below > 1:
+            shown = suppress_counts(prev.fillna(0).astype(np.int64), threshold=suppress_below).to_numpy(object)
+            frame["observed_previous"] = np.where(prev.isna(), None, shown)
     plain = pd.DataFrame(frame.drop(columns="geometry")).reset_index()
     for c in ("flag", "emerging", "persistent"):
         plain[c] = plain[c].map({True: "true", False: "false"})
+    # text that a spreadsheet would run as a formula is neutralised in the CSV (not in the GeoPackage)
+    plain = neutralise_formulas(plain)
     plain.to_csv(folder / "areas.csv", index=False, float_format="%.10g", encoding="utf-8", lineterminator="\n")
     gdf = frame.reset_index()
     gdf.to_file(folder / "areas.gpkg", layer="areas", driver="GPKG")
@@ -340,18 +333,21 @@ def _area_rows(table: pd.DataFrame, words, rules: FlagRules, adjust: str, suppre
                 change = words("withheld")
         entry = {
             "area_id": str(r.Index), "area_name": str(r.area_name),
-            "observed": _count_text(r.observed, suppress_below), "expected": _fmt(r.expected, 1),
+            "observed": _count_text(r.observed, suppress_below),
+            "expected": words("withheld") if hide else _fmt(r.expected, 1),
             "rate": rate, "rate_ci": rate_ci,
             "sir": words("withheld") if hide else _fmt(r.sir),
             "sir_ci": "" if hide else f"({_fmt(r.sir_low)}–{_fmt(r.sir_high)})",
-            "rr": _fmt(r.rr), "rr_ci": f"({_fmt(r.rr_low)}–{_fmt(r.rr_high)})",
-            "prob": (_pct(r.p_above_1) if words.public else _fmt_prob(r.p_above_1).lstrip("="))
-            if np.isfinite(r.p_above_1) else "n/a",
-            "cluster": cluster_names.get(str(r.cluster), str(r.cluster)),
+            "rr": words("withheld") if hide else _fmt(r.rr),
+            "rr_ci": "" if hide else f"({_fmt(r.rr_low)}–{_fmt(r.rr_high)})",
+            "prob": words("withheld") if hide else ((_pct(r.p_above_1) if words.public
+                                                     else _fmt_prob(r.p_above_1).lstrip("="))
+                                                    if np.isfinite(r.p_above_1) else "n/a"),
+            "cluster": words("withheld") if hide else cluster_names.get(str(r.cluster), str(r.cluster)),
             "status": status.get(str(r.flag_change), str(r.flag_change)),
             "status_key": str(r.flag_change),
             "weeks_flagged": str(int(r.weeks_flagged)), "change": change,
-            "reason": _reason(r, words, rules, adjust, p_exceed) if r.flag else "",
+            "reason": (words("withheld") if hide else _reason(r, words, rules, adjust, p_exceed)) if r.flag else "",
             "flag": words("status_" + ("new" if r.flag_change == "new" else "continuing")) if r.flag else "",
         }
         if "std_rate_per_100k" in table.columns:
@@ -377,7 +373,7 @@ def _explorable(analysis, display: pd.DataFrame, words) -> str:
         "observed": display["observed"], "expected": display["expected"],
         "rate": (display["rate"] + " " + display["rate_ci"]).str.strip(),
         "sir": (display["sir"] + " " + display["sir_ci"]).str.strip(),
-        "rr": display["rr"] + " " + display["rr_ci"], "prob": display["prob"],
+        "rr": (display["rr"] + " " + display["rr_ci"]).str.strip(), "prob": display["prob"],
         "cluster": display["cluster"], "flag": display["flag"].where(display["flag"] != "", "—"),
     }, index=table.index)
     sort_values = pd.DataFrame({
