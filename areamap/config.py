@@ -292,6 +292,11 @@ class FlagsConfig:
     use_clusters: bool = _key(True, "bool", "Also require (or report) membership of a significant High-High cluster.")
     min_observed: int = _key(0, "int", "Do not flag areas with fewer observed cases than this in the window.", low=0)
     use_scan: bool = _key(True, "bool", "Also flag areas inside a scan zone with p-value below scan.alpha.")
+    persistent_threshold: float = _key(
+        1.0, "float", "With the space-time model: flag an area 'persistent' when P(RR / region > this) is at "
+        "least min_probability (its newest week's risk against the region's level that week).", low=0.0,
+        closed="neither"
+    )
 
 
 @dataclass(frozen=True)

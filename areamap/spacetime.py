@@ -135,7 +135,12 @@ class SpaceTimeFit:
     forecast_q : ndarray, shape (n,)
         Benjamini-Hochberg adjusted forecast_midp.
     emerging, persistent : ndarray of bool, shape (n,)
-        forecast_q <= fdr; p_above_1 >= persistent_probability.
+        forecast_q <= fdr; week_excess_p >= persistent_probability.
+    level_p_exceed : ndarray, shape (n,)
+        Posterior P(level > persistent_threshold).
+    week_excess_p : ndarray, shape (n,)
+        Posterior P(RR_iT / exp(b0 + g_T) > persistent_threshold): the newest
+        week's risk against the region's level in the same week.
     hyperparameters : pandas.DataFrame
         σ_s, φ, σ_t, σ_d: posterior mean, sd and quantiles (full-data fit).
     notes : tuple of str
@@ -149,6 +154,7 @@ class SpaceTimeFit:
     threshold: float
     fdr: float
     persistent_probability: float
+    persistent_threshold: float
     current_rr_mean: np.ndarray
     current_rr_low: np.ndarray
     current_rr_high: np.ndarray
@@ -157,6 +163,8 @@ class SpaceTimeFit:
     level_mean: np.ndarray
     level_low: np.ndarray
     level_high: np.ndarray
+    level_p_exceed: np.ndarray
+    week_excess_p: np.ndarray
     risk_mean: np.ndarray
     risk_band_low: np.ndarray
     risk_band_high: np.ndarray
@@ -200,6 +208,8 @@ class SpaceTimeFit:
                 "level": self.level_mean,
                 "level_low": self.level_low,
                 "level_high": self.level_high,
+                "level_p_exceed": self.level_p_exceed,
+                "week_excess_p": self.week_excess_p,
                 "forecast_mean": self.forecast_mean,
                 "forecast_low": self.forecast_low,
                 "forecast_high": self.forecast_high,
@@ -274,7 +284,8 @@ class SpaceTimeFit:
             lines.append("No forecast check (too few weeks).")
         else:
             lines.append(f"Emerging (newest count above forecast, FDR q <= {self.fdr:g}): {int(self.emerging.sum())}")
-        lines.append(f"Persistent (P(current RR > 1) >= {self.persistent_probability:g}): "
+        lines.append(f"Persistent (P(RR / region > {self.persistent_threshold:g}) >= "
+                     f"{self.persistent_probability:g}): "
                      f"{int(self.persistent.sum())}")
         lines.extend(f"Note: {t}" for t in self.notes)
         return "\n".join(lines)
@@ -502,6 +513,7 @@ def fit_spacetime(
     forecast: bool = True,
     fdr: float = 0.05,
     persistent_probability: float = 0.8,
+    persistent_threshold: float = 1.0,
     priors: SpaceTimePriors | None = None,
 ) -> SpaceTimeFit:
     r"""Fit the Poisson space-time model and check each district's newest week against its forecast.
@@ -528,7 +540,16 @@ def fit_spacetime(
     fdr : float, default=0.05
         False-discovery rate for the "emerging" flag.
     persistent_probability : float, default=0.8
-        P(current RR > 1) at or above which a district is "persistent".
+        P(RR_iT / exp(b0 + g_T) > persistent_threshold) at or above which a
+        district is "persistent": its newest week's risk stands above the
+        region's level in the same week (so a region-wide rise, carried by the
+        trend g_T, does not flag every district at once).
+    persistent_threshold : float, default=1.0
+        The ratio to the region's level that a "persistent" district exceeds
+        with probability at least ``persistent_probability``. With many weeks
+        the district's risk is estimated precisely, so at 1.0 every district a
+        little above the regional level qualifies; set e.g. 1.2 to flag only a
+        meaningful excess.
     priors : SpaceTimePriors, optional
 
     Returns
@@ -574,7 +595,7 @@ def fit_spacetime(
     >>> y = pd.DataFrame(rng.poisson(4.0, (6, 5)), index=ids, columns=e.columns)
     >>> fit = fit_spacetime(y, e, g)
     >>> fit.to_frame().shape
-    (6, 17)
+    (6, 19)
     >>> bool(np.all(fit.forecast_low <= fit.forecast_high))
     True
     """
@@ -584,6 +605,7 @@ def fit_spacetime(
     fdr = check_interval(fdr, "fdr", f, low=0.0, high=1.0)
     persistent_probability = check_interval(persistent_probability, "persistent_probability", f,
                                             low=0.0, high=1.0)
+    persistent_threshold = check_interval(persistent_threshold, "persistent_threshold", f, low=0.0)
     if priors is None:
         priors = SpaceTimePriors()
     elif not isinstance(priors, SpaceTimePriors):
@@ -615,7 +637,14 @@ def fit_spacetime(
     risk_mean = eng.mix(np.exp(mu + 0.5 * sd**2), wt).reshape(n, w)
     band_lo = np.exp(m1 - 1.959964 * np.sqrt(v1)).reshape(n, w)
     band_hi = np.exp(m1 + 1.959964 * np.sqrt(v1)).reshape(n, w)
-    lev = _mixture_summary(_stack(design, "mean_level"), np.sqrt(_stack(design, "var_level")), wt)
+    lev = _mixture_summary(_stack(design, "mean_level"), np.sqrt(_stack(design, "var_level")), wt,
+                           threshold=persistent_threshold)
+    # newest week's risk against the region's level in the same week, exp(eta_iT - b0 - g_T): a region-wide
+    # rise (carried by g_T) moves every district's RR but not this ratio. The covariance of eta_iT and g_T is
+    # left out, which only widens the spread (conservative; g_T is estimated from all districts, so small).
+    rel_mu = mu[last] - _stack(design, "mean_trend")[-1][None, :]
+    rel_sd = np.sqrt(sd[last] ** 2 + _stack(design, "var_trend")[-1][None, :])
+    week_excess_p = np.clip(eng.mix(ndtr((rel_mu - np.log(persistent_threshold)) / rel_sd), wt), 0.0, 1.0)
     tr = _mixture_summary(_stack(design, "mean_trend"), np.sqrt(_stack(design, "var_trend")), wt)
     nan = np.full(n, np.nan)
     fc_mean, fc_lo, fc_hi, midp, q = nan, nan, nan, nan, nan
@@ -634,13 +663,14 @@ def fit_spacetime(
             fc_mean, fc_lo, fc_hi, midp = _forecast(muf, sdf, design_f.weights, e[:, -1], y[:, -1])
             q = adjust_pvalues(midp, "fdr")
             emerging = np.nan_to_num(q, nan=1.0) <= fdr
-    persistent = cur["p1"] >= persistent_probability
+    persistent = week_excess_p >= persistent_probability
     return SpaceTimeFit(
         ids=pd.Index(ids), weeks=pd.Index(weeks), observed=y, expected=e, trend=trend, threshold=threshold,
-        fdr=fdr, persistent_probability=persistent_probability,
+        fdr=fdr, persistent_probability=persistent_probability, persistent_threshold=persistent_threshold,
         current_rr_mean=cur["mean"], current_rr_low=cur["low"], current_rr_high=cur["high"],
         p_above_1=cur["p1"], p_above_threshold=cur["pt"],
-        level_mean=lev["mean"], level_low=lev["low"], level_high=lev["high"],
+        level_mean=lev["mean"], level_low=lev["low"], level_high=lev["high"], level_p_exceed=lev["pt"],
+        week_excess_p=week_excess_p,
         risk_mean=risk_mean, risk_band_low=band_lo, risk_band_high=band_hi,
         trend_rr_mean=tr["mean"], trend_rr_low=tr["low"], trend_rr_high=tr["high"],
         forecast_mean=fc_mean, forecast_low=fc_lo, forecast_high=fc_hi, forecast_midp=midp, forecast_q=q,

@@ -365,11 +365,11 @@ def test_flags_follow_the_rule_and_the_history(demo_run):
     # the demo's [flags] are the defaults; the 0.8 cut-off is the decision band of Richardson et al. (2004)
     in_scan = (t["scan_zone"] > 0) & (t["scan_p"] < 0.05)  # the demo scans for high risk only
     if demo_run["result"].run_info["spacetime"]["fitted"]:
-        # space-time model fitted: persistent (newest-week P(RR > 1) >= 0.8), emerging (forecast FDR q <= 0.05)
-        rule = ((t["week_p_above_1"] >= 0.8) | (t["cluster"] == "High-High")
+        # space-time model fitted: persistent (P(RR / region > 1) >= 0.8), emerging (forecast FDR q <= 0.05)
+        rule = ((t["week_excess_p"] >= 0.8) | (t["cluster"] == "High-High")
                 | (t["forecast_q"].fillna(1.0) <= 0.05) | in_scan)
         assert (t["emerging"] == (t["flag"] & (t["forecast_q"].fillna(1.0) <= 0.05))).all()
-        assert (t["persistent"] == (t["flag"] & (t["week_p_above_1"] >= 0.8))).all()
+        assert (t["persistent"] == (t["flag"] & (t["week_excess_p"] >= 0.8))).all()
     else:
         rule = (t["p_above_1"] >= 0.8) | (t["cluster"] == "High-High") | in_scan
     assert (t["flag"] == rule).all()
@@ -645,7 +645,7 @@ def test_flag_areas_emerging_and_persistent_reasons():
                      index=["A", "B", "C"])
     out = flag_areas(t, rules=FlagRules(forecast_fdr=0.05))
     assert out["flag"].tolist() == [True, True, False]
-    assert out.loc["A", "flag_reason"] == "persistent: P(RR>1)=0.93 >= 0.8"
+    assert out.loc["A", "flag_reason"] == "persistent: P(RR/region>1)=0.93 >= 0.8"
     assert out.loc["B", "flag_reason"] == "emerging: newest week above its forecast (mid-p <0.001, FDR q=0.012 <= 0.05)"
     assert "emerging" in FlagRules(forecast_fdr=0.05).describe()
     # without forecast_fdr the forecast columns are ignored (cross-sectional rule as before)

@@ -149,6 +149,39 @@ def test_rising_region_shows_in_the_trend():
     assert fit.level_high.min() > 0.8 and fit.level_low.max() < 1.25
 
 
+def test_region_wide_rise_does_not_make_districts_persistent():
+    """The persistent rule reads RR_iT / exp(b0 + g_T): when every district's risk rises together the newest
+    week's P(RR > 1) goes up everywhere, but no district stands above the region (analytic expectation: all
+    districts share the same truth, so none should pass 0.8)."""
+    g = grid_graph(5, 5)
+    rng = np.random.default_rng(3)
+    w = 8
+    e = np.full((25, w), 4.0)
+    y = rng.poisson(e * np.exp(np.linspace(-0.35, 0.35, w))[None, :])
+    cols = list(range(w))
+    fit = fit_spacetime(pd.DataFrame(y, index=g.ids, columns=cols), pd.DataFrame(e, index=g.ids, columns=cols),
+                        g, forecast=False)
+    assert np.mean(fit.p_above_1 >= 0.8) > 0.5  # the newest week is above the window's average everywhere
+    assert not fit.persistent.any()
+    assert np.all(fit.week_excess_p < 0.8)
+
+
+def test_district_above_the_region_is_persistent():
+    # one district at three times the others' risk in every week: above the region in the newest week
+    g = grid_graph(5, 5)
+    rng = np.random.default_rng(4)
+    w = 8
+    e = np.full((25, w), 4.0)
+    rr = np.ones((25, w))
+    rr[7] = 3.0
+    y = rng.poisson(e * rr)
+    cols = list(range(w))
+    fit = fit_spacetime(pd.DataFrame(y, index=g.ids, columns=cols), pd.DataFrame(e, index=g.ids, columns=cols),
+                        g, forecast=False)
+    assert fit.persistent[7] and fit.week_excess_p[7] > 0.99
+    assert fit.level_p_exceed[7] > 0.99
+
+
 def test_missing_counts_are_left_out():
     y, e, g = _tables(seed=3)
     y = y.astype(float)

@@ -15,7 +15,7 @@ import pandas as pd
 #: Columns the space-time model adds to the per-district table (NaN / False when it was not fitted).
 SPACETIME_COLUMNS = (
     "week_observed", "week_expected", "week_rr", "week_rr_low", "week_rr_high", "week_p_above_1",
-    "level_rr", "level_rr_low", "level_rr_high", "forecast_mean", "forecast_low", "forecast_high",
+    "level_rr", "level_rr_low", "level_rr_high", "level_p_exceed", "week_excess_p", "forecast_mean", "forecast_low", "forecast_high",
     "forecast_midp", "forecast_q", "emerging", "persistent",
 )
 
@@ -65,7 +65,8 @@ def fit_for_period(cfg, study, key, ids, graph, reference_rates):
     priors = SpaceTimePriors(sigma_upper=p.sigma_upper, sigma_tail=p.sigma_tail, phi_upper=p.phi_upper,
                              phi_tail=p.phi_tail, intercept_sd=p.intercept_sd, coefficient_sd=p.coefficient_sd)
     fit = fit_spacetime(counts, expected, graph, trend=st.trend, threshold=cfg.smoothing.threshold,
-                        fdr=st.forecast_fdr, persistent_probability=cfg.flags.min_probability, priors=priors)
+                        fdr=st.forecast_fdr, persistent_probability=cfg.flags.min_probability,
+                        persistent_threshold=cfg.flags.persistent_threshold, priors=priors)
     return fit, weeks, None
 
 
@@ -88,6 +89,8 @@ def columns(fit, ids, *, threshold_differs: bool) -> pd.DataFrame:
         "level_rr": f["level"].to_numpy(float),
         "level_rr_low": f["level_low"].to_numpy(float),
         "level_rr_high": f["level_high"].to_numpy(float),
+        "level_p_exceed": f["level_p_exceed"].to_numpy(float),
+        "week_excess_p": f["week_excess_p"].to_numpy(float),
         "forecast_mean": f["forecast_mean"].to_numpy(float),
         "forecast_low": f["forecast_low"].to_numpy(float),
         "forecast_high": f["forecast_high"].to_numpy(float),
@@ -96,7 +99,8 @@ def columns(fit, ids, *, threshold_differs: bool) -> pd.DataFrame:
         "emerging": f["emerging"].to_numpy(bool),
         "persistent": f["persistent"].to_numpy(bool),
     }, index=ids)
-    out.attrs["p_exceed"] = f["p_above_threshold" if threshold_differs else "p_above_1"].to_numpy(float)
+    # the persistent rule reads the newest week's risk against the region's level in that week
+    out.attrs["p_exceed"] = f["week_excess_p"].to_numpy(float)
     return out
 
 
@@ -113,6 +117,7 @@ def run_info(fit, weeks, note) -> dict:
         "trend": fit.trend,
         "forecast_fdr": fit.fdr,
         "persistent_probability": fit.persistent_probability,
+        "persistent_threshold": fit.persistent_threshold,
         "hyperparameters": json.loads(fit.hyperparameters.to_json(orient="index")),
         "regional_trend": [
             {"week": str(w), "observed": float(r.observed), "expected": float(r.expected),

@@ -78,10 +78,6 @@ STANDARDIZED_RATE_COLUMNS = ("std_rate_per_100k", "std_rate_low", "std_rate_high
 KRIGING_COLUMNS = ("kriged_rr", "kriged_rr_low", "kriged_rr_high")
 
 
-#: Columns withheld (blank) in public tables for areas whose count is suppressed:
-#: with the expected count published, each of them gives the count back exactly.
-from .disclosure import DISCLOSING_COLUMNS as _DISCLOSING_COLUMNS  # noqa: E402 - one list, in disclosure
-
 _ADJUST_LABEL = {"fdr": "FDR q", "bonferroni": "Bonferroni-adjusted p", "none": "unadjusted p"}
 
 Progress = Callable[[str], None]
@@ -118,8 +114,11 @@ class FlagRules:
         When given (the space-time model was fitted), a district is also flagged
         "emerging" when its newest week's count lies above its forecast with
         Benjamini-Hochberg adjusted upper-tail mid-p ``forecast_q <= forecast_fdr``,
-        and the probability rule reads as "persistent" (it then uses the newest
-        week's relative risk from the space-time model).
+        and the probability rule reads as "persistent" (it then uses the
+        space-time model's newest-week risk against the region's level in the
+        same week, with ``persistent_threshold``).
+    persistent_threshold : float, default=1.0
+        The ratio in P(RR / region > persistent_threshold) of the persistent rule.
 
     References
     ----------
@@ -134,11 +133,13 @@ class FlagRules:
     threshold: float = 1.0
     use_scan: bool = True
     forecast_fdr: float | None = None
+    persistent_threshold: float = 1.0
 
     def __post_init__(self) -> None:
         check_interval(self.min_probability, "min_probability", "FlagRules", low=0, high=1, closed="right")
         check_positive_int(self.min_observed, "min_observed", "FlagRules", minimum=0)
         check_interval(self.threshold, "threshold", "FlagRules", low=0)
+        check_interval(self.persistent_threshold, "persistent_threshold", "FlagRules", low=0)
         if self.forecast_fdr is not None:
             check_interval(self.forecast_fdr, "forecast_fdr", "FlagRules", low=0, high=1)
         if not isinstance(self.use_clusters, bool):
@@ -155,8 +156,9 @@ class FlagRules:
         if self.forecast_fdr is not None:
             parts = [f"its newest week's count is above its forecast from its own past weeks, its neighbours "
                      f"and the regional trend (emerging; FDR q <= {self.forecast_fdr:g})",
-                     f"the space-time model gives its newest week P(RR > {self.threshold:g}) >= "
-                     f"{self.min_probability:g} (persistent)"]
+                     f"the space-time model gives its newest week's risk against the region's level in the "
+                     f"same week P(RR / region > {self.persistent_threshold:g}) >= {self.min_probability:g} "
+                     "(persistent)"]
         else:
             parts = [f"posterior P(RR > {self.threshold:g}) >= {self.min_probability:g}"]
         if self.use_clusters:
@@ -255,8 +257,9 @@ def flag_areas(
             met.append(f"emerging: newest week above its forecast (mid-p {_fmt_p(fpi)}, FDR q={_fmt_p(fqi)} "
                        f"<= {rules.forecast_fdr:g})")
         if bp:
-            met.append(("persistent: " if forecast else "")
-                       + f"P(RR>{t}){_fmt_prob(pi)} >= {rules.min_probability:g}")
+            met.append(f"persistent: P(RR/region>{_fmt_num(rules.persistent_threshold)}){_fmt_prob(pi)} "
+                       f">= {rules.min_probability:g}" if forecast
+                       else f"P(RR>{t}){_fmt_prob(pi)} >= {rules.min_probability:g}")
         if bc:
             met.append(f"High-High cluster ({label}={_fmt_p(q)})")
         if bs:
@@ -477,18 +480,7 @@ class PeriodAnalysis:
 
     def summary(self) -> str:
         """A few lines: period, flags and changes, Moran's I."""
-        c = self.changes.counts
-        m = self.run_info["morans_i"]
-        return "\n".join([
-            f"Analysis of {self.period} ({self.period_start} to {self.period_end}, "
-            f"{self.window_weeks} week(s)): {len(self.areas)} districts.",
-            f"Flagged: {c['total']} ({c['new']} new, {c['continuing']} continuing); "
-            f"{c['resolved']} resolved since {self.changes.previous_period}"
-            + ("" if self.changes.previous_available else " (not in the archive)") + ".",
-            f"Global Moran's I (EB-standardized ratios): {m['statistic']:.3f} "
-            f"(expected {m['expected']:.3f}, permutation p = {m['p_value']:.3g}).",
-            *_scan_lines(self.run_info),
-        ])
+        return "\n".join(_summary_lines(self, "Analysis of"))
 
     def _repr_html_(self) -> str:
         lines = "".join(f"<li>{html.escape(s)}</li>" for s in self.summary().splitlines())
@@ -718,8 +710,9 @@ def analyse_period(
             table[c] = st_cols[c].to_numpy()
         p_exceed = table["p_above_threshold"] if threshold_differs else table["p_above_1"]
         if st_fit is not None:
-            # persistent: the newest week's risk under the space-time model; plus the emerging rule
-            rules = dataclasses.replace(rules, forecast_fdr=cfg.spacetime.forecast_fdr)
+            # persistent: newest-week risk against the region's level that week; plus the emerging rule
+            rules = dataclasses.replace(rules, forecast_fdr=cfg.spacetime.forecast_fdr,
+                                        persistent_threshold=cfg.flags.persistent_threshold)
             p_exceed = pd.Series(st_cols.attrs["p_exceed"], index=ids)
         flags = flag_areas(table.assign(p_exceed=p_exceed, scan_high=zone_high),
                            rules=rules, adjust=cl.adjust, scan_alpha=cfg.scan.alpha)
@@ -983,6 +976,25 @@ def _run_scan(cfg, study, key, observed, expected, population, boundaries, graph
     per_week = expected / max(cfg.period.window_weeks, 1)
     return prospective_scan(weekly[weeks], per_week, boundaries, max_weeks=sc.max_weeks, baseline=sc.baseline,
                             **common), None
+
+
+def _summary_lines(result, heading: str) -> list[str]:
+    """The summary lines shared by PeriodAnalysis and BulletinResult: period, flags (by kind), Moran's I, scan."""
+    c = result.changes.counts
+    m = result.run_info["morans_i"]
+    kinds = (result.run_info.get("flags") or {}).get("kinds") or {}
+    lines = [
+        f"{heading} {result.period} ({result.period_start} to {result.period_end}, "
+        f"{result.window_weeks} week(s)): {len(result.areas)} districts.",
+        f"Flagged: {c['total']} ({c['new']} new, {c['continuing']} continuing); "
+        f"{c['resolved']} resolved since {result.changes.previous_period}"
+        + ("" if result.changes.previous_available else " (not in the archive)") + ".",
+    ]
+    if kinds:
+        lines.append("Flags by rule: " + ", ".join(f"{k} {v}" for k, v in kinds.items()) + ".")
+    lines.append(f"Global Moran's I (EB-standardized ratios): {m['statistic']:.3f} "
+                 f"(expected {m['expected']:.3f}, permutation p = {m['p_value']:.3g}).")
+    return [*lines, *_scan_lines(result.run_info)]
 
 
 def _scan_lines(run_info: dict) -> list[str]:

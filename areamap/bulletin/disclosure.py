@@ -58,7 +58,8 @@ DISCLOSING_COLUMNS = (
     "p_above_threshold", "kriged_rr", "kriged_rr_low", "kriged_rr_high", "cluster", "cluster_p", "scan_zone", "scan_p", "flag_reason",
     # space-time model (newest week): withheld when the window's count or the newest week's count is suppressed
     "week_observed", "week_expected", "week_rr", "week_rr_low", "week_rr_high", "week_p_above_1", "level_rr",
-    "level_rr_low", "level_rr_high", "forecast_mean", "forecast_low", "forecast_high", "forecast_midp", "forecast_q",
+    "level_rr_low", "level_rr_high", "level_p_exceed", "week_excess_p", "forecast_mean", "forecast_low", "forecast_high",
+    "forecast_midp", "forecast_q",
 )
 
 #: The space-time columns, also withheld when the newest week's own count (``week_observed``) is suppressed.
@@ -72,7 +73,7 @@ PUBLIC_DECIMALS = {
     "rr_high": 1, "p_above_1": 1, "p_above_threshold": 1, "kriged_rr": 1, "kriged_rr_low": 1,
     "kriged_rr_high": 1, "cluster_p": 2, "scan_p": 2,
     "week_expected": 1, "week_rr": 1, "week_rr_low": 1, "week_rr_high": 1, "week_p_above_1": 1, "level_rr": 1,
-    "level_rr_low": 1, "level_rr_high": 1, "forecast_mean": 1, "forecast_midp": 2, "forecast_q": 2,
+    "level_rr_low": 1, "level_rr_high": 1, "level_p_exceed": 1, "week_excess_p": 1, "forecast_mean": 1, "forecast_midp": 2, "forecast_q": 2,
 }
 
 #: Text shown in place of a withheld text value.

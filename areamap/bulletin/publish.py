@@ -33,7 +33,7 @@ from ..archive import FlagChanges, HistoryArchive
 from ..errors import InputError, ParameterError
 from . import _folder
 from ._folder import MARKER_NAME, OUTPUT_FILES
-from .analysis import Progress, _as_config, _input_files, _scan_lines, _Steps, analyse_period
+from .analysis import Progress, _as_config, _input_files, _summary_lines, _Steps, analyse_period
 from .disclosure import public_analysis
 from .render import render_bulletin
 
@@ -104,17 +104,8 @@ class BulletinResult:
 
     def summary(self) -> str:
         """A few lines: period, flags and changes, Moran's I, where the outputs are."""
-        c = self.changes.counts
-        m = self.run_info["morans_i"]
         return "\n".join([
-            f"Bulletin for {self.period} ({self.period_start} to {self.period_end}, "
-            f"{self.window_weeks} week(s)): {len(self.areas)} districts.",
-            f"Flagged: {c['total']} ({c['new']} new, {c['continuing']} continuing); "
-            f"{c['resolved']} resolved since {self.changes.previous_period}"
-            + ("" if self.changes.previous_available else " (not in the archive)") + ".",
-            f"Global Moran's I (EB-standardized ratios): {m['statistic']:.3f} "
-            f"(expected {m['expected']:.3f}, permutation p = {m['p_value']:.3g}).",
-            *_scan_lines(self.run_info),
+            *_summary_lines(self, "Bulletin for"),
             f"Outputs: {self.out}" + (" (public: small counts suppressed)" if self.public else ""),
             *(f"Note: {n}" for n in self.notes),
         ])
@@ -328,8 +319,6 @@ def run_bulletin(
     >>> result = run_bulletin(write_demo("demo"), out="demo/out")  # doctest: +SKIP
     >>> print(result.summary())                                   # doctest: +SKIP
     """
-    from .. import __version__
-
     t_start = time.perf_counter()
     cfg = _as_config(config, "run_bulletin")
     if not isinstance(public, bool):

@@ -282,10 +282,11 @@ def _reason(row, words, rules: FlagRules, adjust: str, p_exceed: float) -> str:
     if rules.forecast_fdr is not None:  # space-time rules: emerging and persistent (newest week)
         if bool(getattr(row, "emerging", False)):
             met.append(words("reason_emerging", q=_p_relation(row.forecast_q)))
-        p_week = float(getattr(row, "week_p_above_1", np.nan))
+        p_week = float(getattr(row, "week_excess_p", np.nan))
         if bool(getattr(row, "persistent", False)):
             shown = p_week if np.isfinite(p_week) else rules.min_probability
-            met.append(words("reason_persistent", t=f"{rules.threshold:g}", p=_fmt_prob(shown).lstrip("="),
+            met.append(words("reason_persistent", t=f"{rules.persistent_threshold:g}",
+                             p=_fmt_prob(shown).lstrip("="),
                              cut=f"{rules.min_probability:g}", cut_pct=_pct(rules.min_probability),
                              p_pct=_pct(shown)))
     elif np.isfinite(p_exceed) and p_exceed >= rules.min_probability:
