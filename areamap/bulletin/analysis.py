@@ -391,8 +391,22 @@ def _jsonable(obj):
 
 
 # ============================================================================ result
+class _AreaTable:
+    """The per-area table shared by :class:`PeriodAnalysis` and the bulletin's result (``areas`` attribute)."""
+
+    @property
+    def flagged(self) -> pd.DataFrame:
+        """Rows of the flagged areas (without geometry)."""
+        t = self.to_frame()
+        return t[t["flag"]]
+
+    def to_frame(self) -> pd.DataFrame:
+        """The per-area table without geometry (unsuppressed)."""
+        return pd.DataFrame(self.areas.drop(columns="geometry"))
+
+
 @dataclass(frozen=True, eq=False)
-class PeriodAnalysis:
+class PeriodAnalysis(_AreaTable):
     """The analysis of one bulletin period (nothing written yet).
 
     Attributes
@@ -467,16 +481,6 @@ class PeriodAnalysis:
     def threshold_differs(self) -> bool:
         """Whether [smoothing] threshold is not 1 (areas then carry ``p_above_threshold``)."""
         return "p_above_threshold" in self.areas.columns
-
-    @property
-    def flagged(self) -> pd.DataFrame:
-        """Rows of the flagged areas (without geometry)."""
-        t = self.to_frame()
-        return t[t["flag"]]
-
-    def to_frame(self) -> pd.DataFrame:
-        """The per-area table without geometry (unsuppressed)."""
-        return pd.DataFrame(self.areas.drop(columns="geometry"))
 
     def summary(self) -> str:
         """A few lines: period, flags and changes, Moran's I."""

@@ -27,13 +27,12 @@ import uuid
 from dataclasses import dataclass, field
 from pathlib import Path
 
-import pandas as pd
 
 from ..archive import FlagChanges, HistoryArchive
 from ..errors import InputError, ParameterError
 from . import _folder
 from ._folder import MARKER_NAME, OUTPUT_FILES
-from .analysis import Progress, _as_config, _input_files, _summary_lines, _Steps, analyse_period
+from .analysis import Progress, _AreaTable, _as_config, _input_files, _summary_lines, _Steps, analyse_period
 from .disclosure import public_analysis
 from .render import render_bulletin
 
@@ -43,7 +42,7 @@ __all__ = ["OUTPUT_FILES", "MARKER_NAME", "BulletinResult", "period_folder", "po
 
 # ============================================================================ result
 @dataclass(frozen=True, eq=False)
-class BulletinResult:
+class BulletinResult(_AreaTable):
     """What one bulletin run produced.
 
     Attributes
@@ -91,16 +90,6 @@ class BulletinResult:
     def files(self) -> dict[str, Path]:
         """Paths of the four output files."""
         return {name: self.out / name for name in OUTPUT_FILES}
-
-    @property
-    def flagged(self) -> pd.DataFrame:
-        """Rows of the flagged areas (without geometry)."""
-        t = self.to_frame()
-        return t[t["flag"]]
-
-    def to_frame(self) -> pd.DataFrame:
-        """The per-area table without geometry (unsuppressed)."""
-        return pd.DataFrame(self.areas.drop(columns="geometry"))
 
     def summary(self) -> str:
         """A few lines: period, flags and changes, Moran's I, where the outputs are."""
