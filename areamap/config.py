@@ -280,6 +280,11 @@ class SpaceTimeConfig:
         0.05, "float", "False-discovery rate for 'emerging': newest week's count above its forecast (Benjamini-"
         "Hochberg over districts).", low=0.0, high=1.0, closed="neither"
     )
+    forecast_window: int = _key(
+        3, "int", "Weeks summed by the second forecast check: the sum of the newest this-many counts against its "
+        "forecast from the earlier weeks, beside the newest week alone (Bonferroni over the two); 1 checks the "
+        "newest week only.", low=1
+    )
 
 
 @dataclass(frozen=True)

@@ -650,6 +650,11 @@ def test_flag_areas_emerging_and_persistent_reasons():
     assert "emerging" in FlagRules(forecast_fdr=0.05).describe()
     # without forecast_fdr the forecast columns are ignored (cross-sectional rule as before)
     assert flag_areas(t)["flag"].tolist() == [True, False, False]
+    # the multi-week window: the reason names the window that drives the p-value, with that window's mid-p
+    w = t.assign(forecast_window=[1, 3, 1], forecast_window_midp=[0.3, 0.0021, 0.2])
+    out = flag_areas(w, rules=FlagRules(forecast_fdr=0.05))
+    assert out.loc["B", "flag_reason"] == ("emerging: sum of the last 3 weeks above its forecast (mid-p 0.002, "
+                                           "FDR q=0.012 <= 0.05)")
 
 
 # ============================================================================ publication (issue 12)

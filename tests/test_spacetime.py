@@ -14,7 +14,7 @@ from areamap import fit_spacetime, SpaceTimeFit, SpaceTimePriors
 from areamap._spacetime_engine import rw_structure
 from areamap.errors import InputError, ParameterError
 from areamap.graphs import AreaGraph
-from areamap.spacetime import _forecast
+from areamap.spacetime import _bonferroni_windows, _forecast, _window_moments
 
 from conftest import grid_graph
 
@@ -93,6 +93,104 @@ def test_forecast_midp_of_a_lognormal_mixture_matches_numerical_integration():
 
 
 # ------------------------------------------------------------------ result object
+def _window_case():
+    mu = np.array([[[0.1], [0.2], [0.3]], [[-0.5], [-0.4], [-0.2]]])
+    var = np.array([[[0.05], [0.07], [0.09]], [[0.2], [0.25], [0.3]]])
+    return mu, var, np.array([0.03]), np.array([[3.0, 3.0, 3.0], [8.0, 8.0, 9.0]])
+
+
+def test_window_sum_predictive_matches_monte_carlo():
+    # Monte Carlo from the Gaussian approximation itself (common practice): eta_t = mu_t + s_t z + d_t with
+    # one shared z over the 3 weeks and independent d_t ~ N(0, sigma_d^2), S = sum of Poisson(E_t exp(eta_t)).
+    mu, var, var_d, e = _window_case()
+    m_log, s_log = _window_moments(mu, var, var_d, e)
+    rng = np.random.default_rng(3)
+    n_draws = 400_000
+    for i in range(2):
+        shared = np.sqrt(var[i, :, 0] - var_d[0])
+        eta = (mu[i, :, 0] + shared * rng.standard_normal(n_draws)[:, None]
+               + np.sqrt(var_d[0]) * rng.standard_normal((n_draws, 3)))
+        s = rng.poisson((e[i] * np.exp(eta)).sum(axis=1))
+        for q in (0.5, 0.9, 0.99):
+            y = np.quantile(s, q)
+            mc = np.mean(s > y) + 0.5 * np.mean(s == y)
+            mean, _, _, midp = _forecast(m_log[i:i + 1], s_log[i:i + 1], np.ones(1), np.ones(1), np.array([y]))
+            # the log-normal match (Fenton 1960) is exact in mean and variance, approximate in shape: 10 %
+            # of the tail probability plus Monte Carlo error (about 2e-4 at q = 0.99)
+            assert_allclose(midp[0], mc, rtol=0.1, atol=1e-3)
+        # the predictive mean is exact: sum_t E_t exp(mu_t + var_t / 2)
+        assert_allclose(mean[0], np.sum(e[i] * np.exp(mu[i, :, 0] + 0.5 * var[i, :, 0])), rtol=1e-10)
+        # with the shared parts less than perfectly correlated (here independent), the true tail is lighter:
+        # the approximation is conservative there
+        eta_ind = mu[i, :, 0] + shared * rng.standard_normal((n_draws, 3)) + np.sqrt(var_d[0]) * rng.standard_normal(
+            (n_draws, 3))
+        s_ind = rng.poisson((e[i] * np.exp(eta_ind)).sum(axis=1))
+        y = np.quantile(s, 0.99)
+        midp = _forecast(m_log[i:i + 1], s_log[i:i + 1], np.ones(1), np.ones(1), np.array([y]))[3]
+        assert np.mean(s_ind > y) + 0.5 * np.mean(s_ind == y) < midp[0]
+
+
+def test_one_week_window_reduces_to_the_single_week_forecast():
+    # k = 1: Lambda = E exp(eta) is log-normal already; the match must return (mu, sd) exactly
+    mu, var, var_d, e = _window_case()
+    m_log, s_log = _window_moments(mu[:, :1], var[:, :1], var_d, e[:, :1])
+    assert_allclose(m_log[:, 0], np.log(e[:, 0]) + mu[:, 0, 0], rtol=1e-10)  # identity up to rounding
+    assert_allclose(s_log[:, 0], np.sqrt(var[:, 0, 0]), rtol=1e-10)
+
+
+def test_bonferroni_over_windows():
+    # Bonferroni (1936): m windows, p = min(1, m * min p_j) (textbook rule)
+    p, best = _bonferroni_windows([np.array([0.01, 0.3, np.nan]), np.array([0.002, 0.8, np.nan])])
+    assert_allclose(p[:2], [0.004, 0.6], rtol=1e-12)
+    assert np.isnan(p[2])
+    assert list(best[:2]) == [1, 0]
+
+
+def _multiweek_tables(seed, boost):
+    g = grid_graph(8, 8)
+    ids = list(g.ids)
+    rng = np.random.default_rng(seed)
+    weeks = 10
+    e = np.repeat(rng.uniform(2.0, 6.0, len(ids))[:, None], weeks, axis=1)
+    rr = np.exp(rng.normal(0.0, 0.15, (len(ids), 1)) + np.zeros((1, weeks)))
+    if boost:
+        rr[[9, 10, 17], -3:] *= 2.5
+    y = rng.poisson(e * rr)
+    cols = pd.Index([f"2026-W{t + 1:02d}" for t in range(weeks)])
+    return pd.DataFrame(y, index=ids, columns=cols), pd.DataFrame(e, index=ids, columns=cols), g
+
+
+@pytest.mark.slow
+def test_planted_multiweek_excess_is_found_by_the_window_check():
+    y, e, g = _multiweek_tables(21, boost=True)
+    fit = fit_spacetime(y, e, g)
+    one = fit_spacetime(y, e, g, forecast_window=1)
+    planted = [9, 10, 17]
+    # the three-week sum carries more evidence than the newest week alone
+    assert np.all(fit.window_midp[planted] < fit.forecast_midp[planted])
+    assert fit.emerging[planted].sum() >= 2
+    assert fit.emerging[planted].sum() >= one.emerging[planted].sum()
+    assert np.all(fit.forecast_fired[planted][fit.emerging[planted]] == 3)
+    assert fit.emerging.sum() - fit.emerging[planted].sum() <= 1
+    df = fit.to_frame()
+    assert {"forecast_window_midp", "forecast_p", "forecast_window"} <= set(df.columns)
+    assert_allclose(one.forecast_p, np.minimum(1.0, one.forecast_midp), rtol=1e-12)  # one window: no penalty
+
+
+@pytest.mark.slow
+def test_no_change_window_midp_is_calibrated():
+    # no planted change: the mid-p of the 3-week sums is roughly uniform (nominal 5 % below 0.05), and the
+    # emerging flag (FDR over districts) stays quiet
+    shares, flagged = [], 0
+    for seed in (31, 32):
+        y, e, g = _multiweek_tables(seed, boost=False)
+        fit = fit_spacetime(y, e, g)
+        shares.append(np.mean(fit.window_midp < 0.05))
+        flagged += int(fit.emerging.sum())
+    assert np.mean(shares) <= 0.1
+    assert flagged <= 1
+
+
 def test_result_tables(small_fit):
     fit, y, e, g = small_fit
     assert isinstance(fit, SpaceTimeFit)
@@ -210,6 +308,8 @@ def test_input_errors():
         fit_spacetime(y, e, g, trend="linear")
     with pytest.raises(ParameterError, match="The 'fdr' parameter of fit_spacetime must be in"):
         fit_spacetime(y, e, g, fdr=1.5)
+    with pytest.raises(ParameterError, match="The 'forecast_window' parameter of fit_spacetime must be"):
+        fit_spacetime(y, e, g, forecast_window=0)
     with pytest.raises(InputError, match="at least 3 weeks"):
         fit_spacetime(y.iloc[:, :2], e.iloc[:, :2], g)
     bad = y.copy()

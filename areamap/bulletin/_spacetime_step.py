@@ -65,7 +65,7 @@ def fit_for_period(cfg, study, key, ids, graph, reference_rates):
     priors = SpaceTimePriors(sigma_upper=p.sigma_upper, sigma_tail=p.sigma_tail, phi_upper=p.phi_upper,
                              phi_tail=p.phi_tail, intercept_sd=p.intercept_sd, coefficient_sd=p.coefficient_sd)
     fit = fit_spacetime(counts, expected, graph, trend=st.trend, threshold=cfg.smoothing.threshold,
-                        fdr=st.forecast_fdr, persistent_probability=cfg.flags.min_probability,
+                        forecast_window=st.forecast_window, fdr=st.forecast_fdr, persistent_probability=cfg.flags.min_probability,
                         persistent_threshold=cfg.flags.persistent_threshold, priors=priors)
     return fit, weeks, None
 
@@ -101,6 +101,9 @@ def columns(fit, ids, *, threshold_differs: bool) -> pd.DataFrame:
     }, index=ids)
     # the persistent rule reads the newest week's risk against the region's level in that week
     out.attrs["p_exceed"] = f["week_excess_p"].to_numpy(float)
+    # the forecast window behind each district's p-value (1 = newest week, k = sum of the last k weeks)
+    out.attrs["forecast_window"] = f["forecast_window"].to_numpy(np.int64)
+    out.attrs["forecast_window_midp"] = f["forecast_window_midp"].to_numpy(float)
     return out
 
 
@@ -116,6 +119,7 @@ def run_info(fit, weeks, note) -> dict:
         "weeks": [str(w) for w in fit.weeks],
         "trend": fit.trend,
         "forecast_fdr": fit.fdr,
+        "forecast_window": fit.forecast_window,
         "persistent_probability": fit.persistent_probability,
         "persistent_threshold": fit.persistent_threshold,
         "hyperparameters": json.loads(fit.hyperparameters.to_json(orient="index")),

@@ -112,8 +112,10 @@ class FlagRules:
         Also flag districts inside a significant scan zone (raised risk).
     forecast_fdr : float, optional
         When given (the space-time model was fitted), a district is also flagged
-        "emerging" when its newest week's count lies above its forecast with
-        Benjamini-Hochberg adjusted upper-tail mid-p ``forecast_q <= forecast_fdr``,
+        "emerging" when its newest week's count (or the sum of its last few
+        weeks, when the table has ``forecast_window`` > 1 and
+        ``forecast_window_midp``) lies above its forecast with
+        Benjamini-Hochberg adjusted p-value ``forecast_q <= forecast_fdr``,
         and the probability rule reads as "persistent" (it then uses the
         space-time model's newest-week risk against the region's level in the
         same week, with ``persistent_threshold``).
@@ -154,7 +156,8 @@ class FlagRules:
     def describe(self, *, adjust: str = "fdr", alpha: float = 0.05, scan_alpha: float | None = None) -> str:
         """The rule in one plain sentence (printed on the bulletin); ``scan_alpha`` None: no scan was run."""
         if self.forecast_fdr is not None:
-            parts = [f"its newest week's count is above its forecast from its own past weeks, its neighbours "
+            parts = [f"its newest week's count (or the sum of its last weeks) is above its forecast from its own "
+                     f"past weeks, its neighbours "
                      f"and the regional trend (emerging; FDR q <= {self.forecast_fdr:g})",
                      f"the space-time model gives its newest week's risk against the region's level in the "
                      f"same week P(RR / region > {self.persistent_threshold:g}) >= {self.min_probability:g} "
@@ -238,9 +241,14 @@ def flag_areas(
     high = table["scan_high"].to_numpy(bool) if has_scan and "scan_high" in table.columns else True
     by_scan = (scan_zone > 0) & (np.nan_to_num(scan_p, nan=1.0) < scan_alpha) & high
     forecast = rules.forecast_fdr is not None and "forecast_q" in table.columns
+    # optional: which forecast window drives the district's p-value, and that window's mid-p
+    fwin = (table["forecast_window"].to_numpy(np.int64) if "forecast_window" in table.columns
+            else np.ones(len(table), dtype=np.int64))
     if forecast:
         fq = table["forecast_q"].to_numpy(float)
         fp = table["forecast_midp"].to_numpy(float) if "forecast_midp" in table.columns else fq
+        if "forecast_window_midp" in table.columns:
+            fp = np.where(fwin > 1, table["forecast_window_midp"].to_numpy(float), fp)
         by_forecast = np.nan_to_num(fq, nan=2.0) <= rules.forecast_fdr
     else:
         fq = fp = np.full(len(table), np.nan)
@@ -250,11 +258,12 @@ def flag_areas(
     t = _fmt_num(rules.threshold)
     reasons = []
     rows = zip(p, by_prob, by_cluster, by_scan, enough, table["cluster_p"].to_numpy(float), scan_zone, scan_p,
-               by_forecast, fp, fq)
-    for pi, bp, bc, bs, ok, q, zone, zp, bf, fpi, fqi in rows:
+               by_forecast, fp, fq, fwin)
+    for pi, bp, bc, bs, ok, q, zone, zp, bf, fpi, fqi, fw in rows:
         met = []
         if bf:
-            met.append(f"emerging: newest week above its forecast (mid-p {_fmt_p(fpi)}, FDR q={_fmt_p(fqi)} "
+            what = "newest week" if fw <= 1 else f"sum of the last {fw} weeks"
+            met.append(f"emerging: {what} above its forecast (mid-p {_fmt_p(fpi)}, FDR q={_fmt_p(fqi)} "
                        f"<= {rules.forecast_fdr:g})")
         if bp:
             met.append(f"persistent: P(RR/region>{_fmt_num(rules.persistent_threshold)}){_fmt_prob(pi)} "
@@ -718,7 +727,8 @@ def analyse_period(
             rules = dataclasses.replace(rules, forecast_fdr=cfg.spacetime.forecast_fdr,
                                         persistent_threshold=cfg.flags.persistent_threshold)
             p_exceed = pd.Series(st_cols.attrs["p_exceed"], index=ids)
-        flags = flag_areas(table.assign(p_exceed=p_exceed, scan_high=zone_high),
+        extra = {k: st_cols.attrs[k] for k in ("forecast_window", "forecast_window_midp") if k in st_cols.attrs}
+        flags = flag_areas(table.assign(p_exceed=p_exceed, scan_high=zone_high, **extra),
                            rules=rules, adjust=cl.adjust, scan_alpha=cfg.scan.alpha)
         table["flag"] = flags["flag"].to_numpy(bool)
         table["flag_reason"] = flags["flag_reason"].to_numpy(object)
