@@ -231,16 +231,20 @@ def test_district_order_does_not_matter(small_fit):
     assert_allclose(b["forecast_midp"], a["forecast_midp"], atol=2e-3)
 
 
+def _grid_fit(rr, seed):
+    """fit_spacetime without forecast on a 5 x 5 grid, 8 weeks, 4 expected cases per district-week,
+    Poisson counts at relative risks ``rr`` (broadcast to 25 x 8)."""
+    g = grid_graph(5, 5)
+    e = np.full((25, 8), 4.0)
+    y = np.random.default_rng(seed).poisson(e * np.broadcast_to(rr, e.shape))
+    cols = list(range(8))
+    return fit_spacetime(pd.DataFrame(y, index=g.ids, columns=cols), pd.DataFrame(e, index=g.ids, columns=cols),
+                         g, forecast=False)
+
+
 def test_rising_region_shows_in_the_trend():
     # a region-wide doubling over the window must appear in the trend, not in the districts
-    g = grid_graph(5, 5)
-    rng = np.random.default_rng(2)
-    w = 8
-    e = np.full((25, w), 4.0)
-    y = rng.poisson(e * np.exp(np.linspace(-0.35, 0.35, w))[None, :])
-    cols = list(range(w))
-    fit = fit_spacetime(pd.DataFrame(y, index=g.ids, columns=cols), pd.DataFrame(e, index=g.ids, columns=cols),
-                        g, forecast=False)
+    fit = _grid_fit(np.exp(np.linspace(-0.35, 0.35, 8))[None, :], seed=2)
     ratio = fit.trend_rr_mean[-1] / fit.trend_rr_mean[0]
     assert 1.5 < ratio < 2.7  # true ratio exp(0.7) = 2.01; 800 cases
     assert np.all(np.isnan(fit.forecast_midp))
@@ -251,14 +255,7 @@ def test_region_wide_rise_does_not_make_districts_persistent():
     """The persistent rule reads RR_iT / exp(b0 + g_T): when every district's risk rises together the newest
     week's P(RR > 1) goes up everywhere, but no district stands above the region (analytic expectation: all
     districts share the same truth, so none should pass 0.8)."""
-    g = grid_graph(5, 5)
-    rng = np.random.default_rng(3)
-    w = 8
-    e = np.full((25, w), 4.0)
-    y = rng.poisson(e * np.exp(np.linspace(-0.35, 0.35, w))[None, :])
-    cols = list(range(w))
-    fit = fit_spacetime(pd.DataFrame(y, index=g.ids, columns=cols), pd.DataFrame(e, index=g.ids, columns=cols),
-                        g, forecast=False)
+    fit = _grid_fit(np.exp(np.linspace(-0.35, 0.35, 8))[None, :], seed=3)
     assert np.mean(fit.p_above_1 >= 0.8) > 0.5  # the newest week is above the window's average everywhere
     assert not fit.persistent.any()
     assert np.all(fit.week_excess_p < 0.8)
@@ -266,16 +263,9 @@ def test_region_wide_rise_does_not_make_districts_persistent():
 
 def test_district_above_the_region_is_persistent():
     # one district at three times the others' risk in every week: above the region in the newest week
-    g = grid_graph(5, 5)
-    rng = np.random.default_rng(4)
-    w = 8
-    e = np.full((25, w), 4.0)
-    rr = np.ones((25, w))
+    rr = np.ones((25, 8))
     rr[7] = 3.0
-    y = rng.poisson(e * rr)
-    cols = list(range(w))
-    fit = fit_spacetime(pd.DataFrame(y, index=g.ids, columns=cols), pd.DataFrame(e, index=g.ids, columns=cols),
-                        g, forecast=False)
+    fit = _grid_fit(rr, seed=4)
     assert fit.persistent[7] and fit.week_excess_p[7] > 0.99
     assert fit.level_p_exceed[7] > 0.99
 

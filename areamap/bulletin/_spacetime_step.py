@@ -70,7 +70,7 @@ def fit_for_period(cfg, study, key, ids, graph, reference_rates):
     return fit, weeks, None
 
 
-def columns(fit, ids, *, threshold_differs: bool) -> pd.DataFrame:
+def columns(fit, ids) -> pd.DataFrame:
     """The :data:`SPACETIME_COLUMNS` of each district (``ids`` order); empty values without a fit."""
     n = len(ids)
     if fit is None:

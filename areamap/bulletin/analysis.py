@@ -675,8 +675,7 @@ def analyse_period(
         from . import _spacetime_step
 
         st_fit, st_weeks, st_note = _spacetime_step.fit_for_period(cfg, study, key, ids, graph, rates)
-        st_cols = _spacetime_step.columns(st_fit, ids, threshold_differs=not math.isclose(cfg.smoothing.threshold,
-                                                                                         1.0))
+        st_cols = _spacetime_step.columns(st_fit, ids)
 
         steps.start("clusters", f"Moran's I and local clusters ({cfg.clusters.permutations} permutations)")
         from ..autocorrelation import rate_local_clusters, rate_morans_i
