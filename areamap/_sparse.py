@@ -277,6 +277,340 @@ def _takahashi(n, lp, li, lx):  # pragma: no cover - compiled
 
 
 @nb.njit(cache=True)
+def _postorder(parent):  # pragma: no cover - compiled
+    """Postorder of a forest (children visited in increasing order; Davis 2006, sec. 4.3)."""
+    n = parent.size
+    head = np.full(n, -1, np.int64)
+    nxt = np.full(n, -1, np.int64)
+    for j in range(n - 1, -1, -1):
+        p = parent[j]
+        if p != -1:
+            nxt[j] = head[p]
+            head[p] = j
+    post = np.empty(n, np.int64)
+    stack = np.empty(n, np.int64)
+    k = 0
+    for root in range(n):
+        if parent[root] != -1:
+            continue
+        top = 0
+        stack[0] = root
+        while top >= 0:
+            p = stack[top]
+            i = head[p]
+            if i == -1:
+                top -= 1
+                post[k] = p
+                k += 1
+            else:
+                head[p] = nxt[i]
+                top += 1
+                stack[top] = i
+    return post
+
+
+@nb.njit(cache=True)
+def _relaxed_supernodes(lp, li, parent):  # pragma: no cover - compiled
+    """Partition of the (postordered) columns into relaxed supernodes.
+
+    A run of columns f..l-1 forms a supernode when each column's parent is the next column;
+    the rows below the run are those of its last column. Runs are merged greedily along such
+    chains while the explicit zeros this adds stay below the shares of Ashcraft & Grimes
+    (1989)-style amalgamation (all merges up to 4 columns, 80 % zeros up to 16, 10 % up to 48,
+    5 % beyond). Returns the first column of each supernode (and n at the end).
+    """
+    n = lp.size - 1
+    cnt = np.diff(lp)
+    starts = np.empty(n + 1, np.int64)
+    ns = 0
+    f = 0
+    true_nnz = cnt[0]
+    for j in range(1, n + 1):
+        if j < n and parent[j - 1] == j:
+            # candidate: merge column j into the current run f..j-1
+            s = j - f + 1
+            r = cnt[j] - 1  # rows below j (the rows below the merged run)
+            padded = s * (s + 1) // 2 + s * r
+            tn = true_nnz + cnt[j]
+            zeros = padded - tn
+            if cnt[j - 1] == cnt[j] + 1 or s <= 4:
+                ok = True
+            elif s <= 16:
+                ok = zeros < 0.8 * padded
+            elif s <= 48:
+                ok = zeros < 0.1 * padded
+            else:
+                ok = zeros < 0.05 * padded
+            if ok:
+                true_nnz = tn
+                continue
+        starts[ns] = f
+        ns += 1
+        f = j
+        if j < n:
+            true_nnz = cnt[j]
+    starts[ns] = n
+    return starts[: ns + 1].copy()
+
+
+@nb.njit(cache=True)
+def _supernode_layout(lp, li, starts):  # pragma: no cover - compiled
+    """Dense column-major blocks of the supernodes.
+
+    Supernode K has columns f..l-1 and rows R_K = (f..l-1, then the rows below l-1); its block
+    of ld = |R_K| rows and l - f columns starts at off[K], so entry (R_K[x], f + o) lives at
+    off[K] + o * ld + x (the strictly upper part of the diagonal block is unused). Returns
+    (rptr, rows, off, snode, pos): row lists, block offsets, the supernode of each column and
+    the block position of every entry of the column-wise pattern (lp, li).
+    """
+    n = lp.size - 1
+    ns = starts.size - 1
+    rptr = np.zeros(ns + 1, np.int64)
+    off = np.zeros(ns + 1, np.int64)
+    snode = np.empty(n, np.int64)
+    for k in range(ns):
+        f = starts[k]
+        l = starts[k + 1]
+        ld = l - f + lp[l] - lp[l - 1] - 1
+        rptr[k + 1] = rptr[k] + ld
+        off[k + 1] = off[k] + ld * (l - f)
+        for c in range(f, l):
+            snode[c] = k
+    rows = np.empty(rptr[ns], np.int64)
+    pos = np.empty(lp[n], np.int64)
+    for k in range(ns):
+        f = starts[k]
+        l = starts[k + 1]
+        s = l - f
+        r0 = rptr[k]
+        for x in range(s):
+            rows[r0 + x] = f + x
+        for t in range(lp[l - 1] + 1, lp[l]):
+            rows[r0 + s + t - lp[l - 1] - 1] = li[t]
+        ld = rptr[k + 1] - r0
+        for c in range(f, l):
+            o = c - f
+            x = o
+            for p in range(lp[c], lp[c + 1]):
+                while rows[r0 + x] < li[p]:
+                    x += 1
+                pos[p] = off[k] + o * ld + x
+    return rptr, rows, off, snode, pos
+
+
+#: supernodes with at least this many multiply-adds in a product form it densely (:func:`_gemm_rows`)
+_BLAS_MIN = 1 << 14
+
+
+@nb.njit(cache=True)
+def _gemm_rows(a, b, c):  # pragma: no cover - compiled
+    """c = a b for row-major a (m x k), b (k x n): rows of c updated four at a time by rows of b.
+
+    Hand-written rather than BLAS: threaded BLAS calls are slow under CPU load, and the order of
+    the sums is fixed (every c[i, j] sums over k in increasing order), so results are deterministic.
+    """
+    m, kk = a.shape
+    nn = b.shape[1]
+    for i in range(m):
+        for j in range(nn):
+            c[i, j] = 0.0
+    i = 0
+    while i + 4 <= m:
+        for t in range(kk):
+            a0 = a[i, t]
+            a1 = a[i + 1, t]
+            a2 = a[i + 2, t]
+            a3 = a[i + 3, t]
+            for j in range(nn):
+                bv = b[t, j]
+                c[i, j] += a0 * bv
+                c[i + 1, j] += a1 * bv
+                c[i + 2, j] += a2 * bv
+                c[i + 3, j] += a3 * bv
+        i += 4
+    while i < m:
+        for t in range(kk):
+            a0 = a[i, t]
+            for j in range(nn):
+                c[i, j] += a0 * b[t, j]
+        i += 1
+
+
+@nb.njit(cache=True, inline="always")
+def _dot_rows(u, i, v, j, lo, hi):  # pragma: no cover - compiled
+    """Σ_t u[i, t] v[j, t] over lo <= t < hi, four partial sums in a fixed order (deterministic)."""
+    s0 = 0.0
+    s1 = 0.0
+    s2 = 0.0
+    s3 = 0.0
+    t = lo
+    while t + 4 <= hi:
+        s0 += u[i, t] * v[j, t]
+        s1 += u[i, t + 1] * v[j, t + 1]
+        s2 += u[i, t + 2] * v[j, t + 2]
+        s3 += u[i, t + 3] * v[j, t + 3]
+        t += 4
+    while t < hi:
+        s0 += u[i, t] * v[j, t]
+        t += 1
+    return (s0 + s1) + (s2 + s3)
+
+
+@nb.njit(cache=True)
+def _takahashi_super(starts, rptr, rows, off, snode, lb):  # pragma: no cover - compiled
+    """Elements of (L Lᵀ)⁻¹ on the supernodal blocks of L (same layout as ``lb``).
+
+    For supernode K with diagonal block L_KK and rows I below it (Σ_II known from the
+    supernodes above): Y = L_IK L_KK⁻¹, Σ_IK = −Σ_II Y and Σ_KK = L_KK⁻ᵀ L_KK⁻¹ + Yᵀ Σ_II Y
+    (the blocked form of the Takahashi recursions). Σ_II is read column by column from the
+    blocks of the ancestors (every pair of rows of I lies in the block holding the smaller
+    row) and multiplied at once into all columns of Y; no dense Σ_II is formed.
+    """
+    ns = starts.size - 1
+    maxr = 1
+    maxs = 1
+    for k in range(ns):
+        s = starts[k + 1] - starts[k]
+        maxs = max(maxs, s)
+        maxr = max(maxr, rptr[k + 1] - rptr[k] - s)
+    sb = np.zeros(lb.size)
+    ybuf = np.empty(maxr * maxs)
+    zbuf = np.empty(maxr * maxs)
+    gcol = np.empty(maxr)
+    big_r = 1
+    for k in range(ns):
+        s = starts[k + 1] - starts[k]
+        r = rptr[k + 1] - rptr[k] - s
+        if s * r * r >= _BLAS_MIN:
+            big_r = max(big_r, r)
+    gbuf = np.empty(big_r * big_r)
+    wbuf = np.empty(maxs * maxs)
+    yrbuf = np.empty(maxr * maxs)
+    linv = np.empty((maxs, maxs))
+    rel = np.empty(maxr, np.int64)
+    for k in range(ns - 1, -1, -1):
+        f = starts[k]
+        s = starts[k + 1] - f
+        r0 = rptr[k]
+        ld = rptr[k + 1] - r0
+        r = ld - s
+        o0 = off[k]
+        yt = ybuf[: s * r].reshape((s, r))
+        zt = zbuf[: s * r].reshape((s, r))
+        # Yᵀ = L_KK⁻ᵀ L_IKᵀ (back substitution over the columns of the supernode)
+        for o in range(s - 1, -1, -1):
+            col = o0 + o * ld
+            for a in range(r):
+                yt[o, a] = lb[col + s + a]
+            for o2 in range(o + 1, s):
+                lv = lb[col + o2]
+                if lv != 0.0:
+                    for a in range(r):
+                        yt[o, a] -= lv * yt[o2, a]
+            d = lb[col + o]
+            for a in range(r):
+                yt[o, a] /= d
+                zt[o, a] = 0.0
+        # Zᵀ = (Σ_II Y)ᵀ: Σ_II is read one column (lower part) at a time from the ancestors;
+        # large blocks gather the whole Σ_II and multiply with BLAS
+        dense = s * r * r >= _BLAS_MIN
+        g = gbuf[: r * r].reshape((r, r)) if dense else gbuf[:1].reshape((1, 1))
+        b = 0
+        while b < r:
+            c = rows[r0 + s + b]
+            p = snode[c]
+            fp = starts[p]
+            lpp = starts[p + 1]
+            rp = rptr[p]
+            ldp = rptr[p + 1] - rp
+            b1 = b
+            while b1 < r and rows[r0 + s + b1] < lpp:
+                b1 += 1
+            q = c - fp
+            for a in range(b, r):
+                i = rows[r0 + s + a]
+                while rows[rp + q] < i:
+                    q += 1
+                rel[a] = q
+            for bb in range(b, b1):
+                base = off[p] + (rows[r0 + s + bb] - fp) * ldp
+                if dense:
+                    for a in range(bb, r):
+                        v = sb[base + rel[a]]
+                        g[bb, a] = v
+                        g[a, bb] = v
+                    continue
+                for a in range(bb, r):
+                    gcol[a] = sb[base + rel[a]]
+                for o in range(s):
+                    ybo = yt[o, bb]
+                    for a in range(bb + 1, r):
+                        zt[o, a] += ybo * gcol[a]
+                    s0 = gcol[bb] * ybo
+                    s1 = 0.0
+                    s2 = 0.0
+                    s3 = 0.0
+                    a = bb + 1
+                    while a + 3 < r:
+                        s0 += gcol[a] * yt[o, a]
+                        s1 += gcol[a + 1] * yt[o, a + 1]
+                        s2 += gcol[a + 2] * yt[o, a + 2]
+                        s3 += gcol[a + 3] * yt[o, a + 3]
+                        a += 4
+                    while a < r:
+                        s0 += gcol[a] * yt[o, a]
+                        a += 1
+                    zt[o, bb] += (s0 + s1) + (s2 + s3)
+            b = b1
+        if dense:
+            _gemm_rows(yt, g, zt)
+        # L_KK⁻¹, stored by columns: linv[o, t] = (L_KK⁻¹)[t, o] (forward substitution)
+        for o in range(s):
+            for t in range(s):
+                linv[o, t] = 0.0
+            linv[o, o] = 1.0
+            for u in range(o, s):
+                col = o0 + u * ld
+                xu = linv[o, u] / lb[col + u]
+                linv[o, u] = xu
+                for t in range(u + 1, s):
+                    linv[o, t] -= lb[col + t] * xu
+        # Σ_KK = L_KK⁻ᵀ L_KK⁻¹ + Zᵀ Y (lower triangle); Σ_IK = −Z
+        big = s * s * r >= _BLAS_MIN
+        if big:  # W = Zᵀ Y with Y (r x s) stored by rows
+            yr = yrbuf[: r * s].reshape((r, s))
+            for a in range(r):
+                for o in range(s):
+                    yr[a, o] = yt[o, a]
+            w = wbuf[: s * s].reshape((s, s))
+            _gemm_rows(zt, yr, w)
+        for o in range(s):
+            col = o0 + o * ld
+            for x in range(o, s):
+                v = _dot_rows(linv, x, linv, o, x, s)
+                sb[col + x] = v + (w[x, o] if big else _dot_rows(zt, x, yt, o, 0, r))
+            for a in range(r):
+                sb[col + s + a] = -zt[o, a]
+    return sb
+
+
+@nb.njit(cache=True)
+def _lookup_super(starts, rptr, rows, off, snode, sb, ri, ci):  # pragma: no cover - compiled
+    """sb at (max(r, c), min(r, c)) for each pair; NaN when the pair is outside the blocks."""
+    out = np.empty(ri.size)
+    for t in range(ri.size):
+        r = ri[t]
+        c = ci[t]
+        if r < c:
+            r, c = c, r
+        k = snode[c]
+        o = c - starts[k]
+        q = _find(rows, rptr[k] + o, rptr[k + 1], r)
+        out[t] = sb[off[k] + o * (rptr[k + 1] - rptr[k]) + q - rptr[k]] if q >= 0 else np.nan
+    return out
+
+
+@nb.njit(cache=True)
 def _lookup(lp, li, sx, rows, cols):  # pragma: no cover - compiled
     """sx at (max(r, c), min(r, c)) for each pair; NaN when the pair is not in the pattern."""
     out = np.empty(rows.size)
@@ -507,6 +841,9 @@ class SparseCholesky:
         self._ai = up.indices.astype(np.int64)
         self.n_upper = int(self._ap[-1])
         self._sym = None  # column-wise symbolic factor (numba kernels), built on first use
+        self._super = None  # supernodal blocks for the selected inverse, built on first use
+        self._sb = None  # last selected inverse on those blocks
+        self._sx = None
         self._lx = None
         self._data = None  # last factorized values on the analysed pattern
         self._factor = None
@@ -611,7 +948,8 @@ class SparseCholesky:
         data = np.ascontiguousarray(data, dtype=np.float64)
         self._data = data
         self._lx = None
-        self.sx = None
+        self._sb = None
+        self._sx = None
         if self.backend == "numba":
             _, lp, li, rp, rc, rpos = self._symbolic()
             lx = np.zeros(int(lp[-1]))
@@ -647,18 +985,63 @@ class SparseCholesky:
         out[self.order] = bb
         return out[:, 0] if vec else out
 
+    # ------------------------------------------------ selected inverse
+    def _supernodal(self):
+        """Relaxed supernodes of L in a postorder of the elimination tree (once per pattern).
+
+        A postorder is an equivalent reordering (same fill, same factor up to the symmetric
+        permutation), so the column-wise factor is copied into the dense blocks as it is.
+        """
+        if self._super is None:
+            parent, lp, li = self._symbolic()[:3]
+            n = self.n
+            post = _postorder(parent)
+            ipost = np.empty(n, np.int64)
+            ipost[post] = np.arange(n)
+            # pattern of L in the postorder; data = 1 + position in the column-wise storage
+            lmat = sp.csc_matrix((np.arange(1.0, lp[-1] + 1.0), li, lp), shape=(n, n))
+            lint = sp.csc_matrix(lmat[post][:, post])
+            lint.sort_indices()
+            plp = lint.indptr.astype(np.int64)
+            pli = lint.indices.astype(np.int64)
+            ppar = np.where(parent[post] >= 0, ipost[np.maximum(parent[post], 0)], -1).astype(np.int64)
+            starts = _relaxed_supernodes(plp, pli, ppar)
+            rptr, rows, off, snode, pos = _supernode_layout(plp, pli, starts)
+            to_block = np.empty(int(lp[-1]), np.int64)
+            to_block[lint.data.astype(np.int64) - 1] = pos
+            d = np.arange(n, dtype=np.int64)
+            diag = off[snode[d]] + (d - starts[snode[d]]) * (rptr[snode[d] + 1] - rptr[snode[d]] + 1)
+            # original index -> postordered position
+            where = ipost[self.inverse_order]
+            self._super = (starts, rptr, rows, off, snode, to_block, diag, where)
+        return self._super
+
     def selected_inverse(self) -> np.ndarray:
-        """Elements of A⁻¹ on the pattern of L (permuted layout; use :meth:`inverse_at`)."""
-        self.sx = _takahashi(self.n, self.lp, self.li, self.lx)
+        """Elements of A⁻¹ on the pattern of L (permuted layout of :attr:`lp`, :attr:`li`; use
+        :meth:`inverse_at` and :meth:`inverse_diagonal` for original indexing)."""
+        starts, rptr, rows, off, snode, to_block, _, _ = self._supernodal()
+        lb = np.zeros(int(off[-1]))
+        lb[to_block] = self.lx
+        self._sb = _takahashi_super(starts, rptr, rows, off, snode, lb)
+        self._sx = None
         return self.sx
 
+    @property
+    def sx(self) -> np.ndarray | None:
+        """Last selected inverse on the pattern of L (layout of :attr:`lp`, :attr:`li`), or None."""
+        if self._sx is None and self._sb is not None:
+            self._sx = self._sb[self._supernodal()[5]]
+        return self._sx
+
     def inverse_at(self, rows: np.ndarray, cols: np.ndarray) -> np.ndarray:
-        """Elements (A⁻¹)[rows, cols] in original indexing; must lie in the pattern of L + Lᵀ."""
-        r = self.inverse_order[np.asarray(rows, dtype=np.int64)]
-        c = self.inverse_order[np.asarray(cols, dtype=np.int64)]
-        return _lookup(self.lp, self.li, self.sx, r, c)
+        """Elements (A⁻¹)[rows, cols] in original indexing; must lie in the pattern of L + Lᵀ
+        (NaN outside the supernodal blocks of L, a superset of that pattern)."""
+        starts, rptr, srows, off, snode, _, _, where = self._supernodal()
+        r = where[np.asarray(rows, dtype=np.int64)]
+        c = where[np.asarray(cols, dtype=np.int64)]
+        return _lookup_super(starts, rptr, srows, off, snode, self._sb, r, c)
 
     def inverse_diagonal(self) -> np.ndarray:
         """Diagonal of A⁻¹ in original indexing."""
-        d = self.sx[self.lp[:-1]]
-        return d[self.inverse_order]
+        sup = self._supernodal()
+        return self._sb[sup[6][sup[7]]]

@@ -1,0 +1,114 @@
+"""Benchmark of the selected inverse (marginal variances) of the CAR engine's sparse Cholesky.
+
+Run:  .venv/bin/python benchmarks/bench_selected_inverse.py [--sizes 10000,100000] [--repeat 3]
+
+On the BYM2 posterior precision (unstructured and structured effects, intercept and 2 coefficients) of
+queen grids of 10,000 and 99,856 areas, times back to back in one process:
+
+* old: the column-wise route (up-looking numba refactorization of the last factorized values, then the
+  column-wise Takahashi recursions ``_takahashi``), the kernels that served ``selected_inverse`` before;
+* new: ``SparseCholesky.selected_inverse()`` as it is now (blocked recursions on relaxed supernodes).
+
+Prints the best wall time of ``--repeat`` runs and the CPU seconds of each route, the ratio old / new,
+the largest difference between the two results relative to the largest entry, the load average and the
+peak resident memory. The 2x target of issue 13 is printed as a ratio (new time x 2 / old time <= 1).
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import resource
+import sys
+import time
+from pathlib import Path
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+
+from bench_models import queen_grid  # noqa: E402
+
+
+def bym2_precision(side: int, seed: int = 20261202):
+    """The engine's latent model on a side x side queen grid and values of its posterior precision."""
+    import numpy as np
+
+    import areamap._car_engine as eng
+
+    g = queen_grid(side, side)
+    rng = np.random.default_rng(seed)
+    n = g.n
+    e = rng.uniform(2.0, 20.0, n)
+    y = rng.poisson(e).astype(float)
+    x = rng.normal(size=(n, 2))
+    lm = eng._LatentModel("bym2", y, e, x, eng._GraphStructure(g.adjacency),
+                          intercept_sd=5.0, coefficient_sd=5.0)
+    theta = np.array([np.log(0.35), 0.6])
+    # Poisson curvature E exp(eta) at a plausible eta around 0
+    w = e * np.exp(0.3 * rng.normal(size=n))
+    data = lm._prior_data(theta) + np.bincount(
+        lm._pos, weights=lm._products(theta) * np.tile(w, len(lm._pairs)), minlength=lm.chol.n_upper)
+    return lm.chol, data
+
+
+def _timed(fn, repeat):
+    best, cpu = np.inf, np.inf
+    out = None
+    for _ in range(repeat):
+        t0, c0 = time.perf_counter(), time.process_time()
+        out = fn()
+        best = min(best, time.perf_counter() - t0)
+        cpu = min(cpu, time.process_time() - c0)
+    return out, best, cpu
+
+
+def main(argv=None) -> int:
+    global np
+    import numpy as np
+
+    from areamap import _sparse
+
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--sizes", default="10000,100000")
+    ap.add_argument("--repeat", type=int, default=3)
+    args = ap.parse_args(argv)
+    print(f"load average at start: {os.getloadavg()[0]:.2f}")
+    for size in (int(s) for s in args.sizes.split(",")):
+        side = int(round(np.sqrt(size)))
+        chol, data = bym2_precision(side)
+        assert chol.factorize_data(data) == -1
+        n = chol.n
+        _, lp, li, rp, rc, rpos = chol._symbolic()
+
+        def old():
+            lx = np.zeros(int(lp[-1]))
+            _sparse._numeric_rows(n, chol._ap, chol._ai, data, lp, li, rp, rc, rpos, lx)
+            return _sparse._takahashi(n, lp, li, lx)
+
+        def new():
+            chol.factorize_data(data)  # forgets the last factor and selected inverse
+            return chol.selected_inverse()
+
+        t0 = time.perf_counter()
+        chol._supernodal()  # once per pattern, like the symbolic analysis
+        t_setup = time.perf_counter() - t0
+        old(), new()  # compile / warm up
+        chol.factorize_data(data)
+        t_fac = _timed(lambda: chol.factorize_data(data), args.repeat)[1]
+        sx_old, w_old, c_old = _timed(old, args.repeat)
+        sx_new, w_new, c_new = _timed(new, args.repeat)
+        # the new route includes one CHOLMOD factorization (factorize_data) that the fit does anyway
+        w_new -= t_fac
+        diff = float(np.max(np.abs(sx_new - sx_old)) / np.max(np.abs(sx_old)))
+        sup = chol._supernodal()
+        print(f"{side}x{side} grid ({side * side} areas, latent size {n}, nnz(L) {int(lp[-1])}, "
+              f"{sup[0].size - 1} supernodes, blocks {int(sup[3][-1])} entries, setup {t_setup:.2f} s):")
+        print(f"  old {w_old:.3f} s wall ({c_old:.3f} s CPU), new {w_new:.3f} s wall ({c_new:.3f} s CPU "
+              f"incl. a {t_fac:.3f} s factorization); old / new {w_old / w_new:.2f}; "
+              f"ratio to the 2x target {2.0 * w_new / w_old:.2f}; max |new - old| / max |old| {diff:.1e}")
+    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
+    print(f"peak memory {peak:.0f} MB; load average at end: {os.getloadavg()[0]:.2f}")
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
