@@ -34,6 +34,8 @@ Chapman & Hall/CRC, section 2.3 (Takahashi recursions for the marginal variances
 
 from __future__ import annotations
 
+from typing import NamedTuple
+
 import numba as nb
 import numpy as np
 import scipy.sparse as sp
@@ -173,29 +175,60 @@ def _row_patterns(n, ap, ai, parent, lp):  # pragma: no cover - compiled
     return rp, rc, rpos
 
 
+@nb.njit(cache=True, inline="always")
+def _numeric_row(k, ap, ai, ax, lp, li, rp, rc, rpos, lx, x):  # pragma: no cover - compiled
+    """Row k of the up-looking factorization (x: zero workspace, left zero); False if not SPD."""
+    x[k] = 0.0
+    for p in range(ap[k], ap[k + 1]):
+        if ai[p] <= k:
+            x[ai[p]] += ax[p]
+    d = x[k]
+    x[k] = 0.0
+    for t in range(rp[k], rp[k + 1]):
+        i = rc[t]
+        q = rpos[t]
+        lki = x[i] / lx[lp[i]]
+        x[i] = 0.0
+        for p in range(lp[i] + 1, q):
+            x[li[p]] -= lx[p] * lki
+        d -= lki * lki
+        lx[q] = lki
+    if not d > 0.0:
+        return False
+    lx[lp[k]] = np.sqrt(d)
+    return True
+
+
 @nb.njit(cache=True)
 def _numeric_rows(n, ap, ai, ax, lp, li, rp, rc, rpos, lx):  # pragma: no cover - compiled
     """Same arithmetic as :func:`_numeric` (bit-identical), with the row patterns precomputed."""
     x = np.zeros(n)
     for k in range(n):
-        x[k] = 0.0
-        for p in range(ap[k], ap[k + 1]):
-            if ai[p] <= k:
-                x[ai[p]] += ax[p]
-        d = x[k]
-        x[k] = 0.0
-        for t in range(rp[k], rp[k + 1]):
-            i = rc[t]
-            q = rpos[t]
-            lki = x[i] / lx[lp[i]]
-            x[i] = 0.0
-            for p in range(lp[i] + 1, q):
-                x[li[p]] -= lx[p] * lki
-            d -= lki * lki
-            lx[q] = lki
-        if not d > 0.0:
+        if not _numeric_row(k, ap, ai, ax, lp, li, rp, rc, rpos, lx, x):
             return k
-        lx[lp[k]] = np.sqrt(d)
+    return -1
+
+
+@nb.njit(cache=True, parallel=True)
+def _numeric_rows_groups(n, ap, ai, ax, lp, li, rp, rc, rpos, lx, label, ngroups):  # pragma: no cover
+    """:func:`_numeric_rows` with the rows of disjoint subtrees of the elimination tree (label g >= 0)
+    done in parallel, then the rest (label -1). Row k only reads rows of its own subtree, and every
+    row does the same arithmetic as in :func:`_numeric_rows`, so the factor is bit-identical."""
+    status = np.full(ngroups + 1, -1, np.int64)
+    for g in nb.prange(ngroups):
+        x = np.zeros(n)
+        for k in range(n):
+            if label[k] == g and not _numeric_row(k, ap, ai, ax, lp, li, rp, rc, rpos, lx, x):
+                status[g] = k
+                break
+    x = np.zeros(n)
+    for k in range(n):
+        if label[k] < 0 and not _numeric_row(k, ap, ai, ax, lp, li, rp, rc, rpos, lx, x):
+            status[ngroups] = k
+            break
+    for g in range(ngroups + 1):
+        if status[g] >= 0:
+            return status[g]
     return -1
 
 
@@ -398,6 +431,19 @@ def _supernode_layout(lp, li, starts):  # pragma: no cover - compiled
     return rptr, rows, off, snode, pos
 
 
+@nb.njit(cache=True)
+def _subtree_sums(parent, work):  # pragma: no cover - compiled
+    """Work and number of nodes of every subtree of a postordered forest."""
+    wsub = work.astype(np.float64).copy()
+    count = np.ones(parent.size, np.int64)
+    for k in range(parent.size):
+        p = parent[k]
+        if p >= 0:
+            wsub[p] += wsub[k]
+            count[p] += count[k]
+    return wsub, count
+
+
 #: supernodes with at least this many multiply-adds in a product form it densely (:func:`_gemm_rows`)
 _BLAS_MIN = 1 << 14
 
@@ -457,7 +503,134 @@ def _dot_rows(u, i, v, j, lo, hi):  # pragma: no cover - compiled
 
 
 @nb.njit(cache=True)
-def _takahashi_super(starts, rptr, rows, off, snode, lb):  # pragma: no cover - compiled
+def _selinv_node(k, starts, rptr, rows, off, snode, lb, sb, ws):  # pragma: no cover - compiled
+    """Blocked Takahashi step of supernode k (see :func:`_takahashi_super`); ws = work buffers."""
+    ybuf, zbuf, gcol, gbuf, wbuf, yrbuf, linv, rel, big_r = ws
+    f = starts[k]
+    s = starts[k + 1] - f
+    r0 = rptr[k]
+    ld = rptr[k + 1] - r0
+    r = ld - s
+    o0 = off[k]
+    yt = ybuf[: s * r].reshape((s, r))
+    zt = zbuf[: s * r].reshape((s, r))
+    # Yᵀ = L_KK⁻ᵀ L_IKᵀ (back substitution over the columns of the supernode)
+    for o in range(s - 1, -1, -1):
+        col = o0 + o * ld
+        for a in range(r):
+            yt[o, a] = lb[col + s + a]
+        for o2 in range(o + 1, s):
+            lv = lb[col + o2]
+            if lv != 0.0:
+                for a in range(r):
+                    yt[o, a] -= lv * yt[o2, a]
+        d = lb[col + o]
+        for a in range(r):
+            yt[o, a] /= d
+            zt[o, a] = 0.0
+    # Zᵀ = (Σ_II Y)ᵀ: Σ_II is read one column (lower part) at a time from the ancestors;
+    # large blocks gather the whole Σ_II and multiply with BLAS
+    dense = s * r * r >= _BLAS_MIN
+    g = gbuf[: r * r].reshape((r, r)) if dense else gbuf[:1].reshape((1, 1))
+    b = 0
+    while b < r:
+        c = rows[r0 + s + b]
+        p = snode[c]
+        fp = starts[p]
+        lpp = starts[p + 1]
+        rp = rptr[p]
+        ldp = rptr[p + 1] - rp
+        b1 = b
+        while b1 < r and rows[r0 + s + b1] < lpp:
+            b1 += 1
+        q = c - fp
+        for a in range(b, r):
+            i = rows[r0 + s + a]
+            while rows[rp + q] < i:
+                q += 1
+            rel[a] = q
+        for bb in range(b, b1):
+            base = off[p] + (rows[r0 + s + bb] - fp) * ldp
+            if dense:
+                for a in range(bb, r):
+                    v = sb[base + rel[a]]
+                    g[bb, a] = v
+                    g[a, bb] = v
+                continue
+            for a in range(bb, r):
+                gcol[a] = sb[base + rel[a]]
+            for o in range(s):
+                ybo = yt[o, bb]
+                for a in range(bb + 1, r):
+                    zt[o, a] += ybo * gcol[a]
+                s0 = gcol[bb] * ybo
+                s1 = 0.0
+                s2 = 0.0
+                s3 = 0.0
+                a = bb + 1
+                while a + 3 < r:
+                    s0 += gcol[a] * yt[o, a]
+                    s1 += gcol[a + 1] * yt[o, a + 1]
+                    s2 += gcol[a + 2] * yt[o, a + 2]
+                    s3 += gcol[a + 3] * yt[o, a + 3]
+                    a += 4
+                while a < r:
+                    s0 += gcol[a] * yt[o, a]
+                    a += 1
+                zt[o, bb] += (s0 + s1) + (s2 + s3)
+        b = b1
+    if dense:
+        _gemm_rows(yt, g, zt)
+    # L_KK⁻¹, stored by columns: linv[o, t] = (L_KK⁻¹)[t, o] (forward substitution)
+    for o in range(s):
+        for t in range(s):
+            linv[o, t] = 0.0
+        linv[o, o] = 1.0
+        for u in range(o, s):
+            col = o0 + u * ld
+            xu = linv[o, u] / lb[col + u]
+            linv[o, u] = xu
+            for t in range(u + 1, s):
+                linv[o, t] -= lb[col + t] * xu
+    # Σ_KK = L_KK⁻ᵀ L_KK⁻¹ + Zᵀ Y (lower triangle); Σ_IK = −Z
+    big = s * s * r >= _BLAS_MIN
+    if big:  # W = Zᵀ Y with Y (r x s) stored by rows
+        yr = yrbuf[: r * s].reshape((r, s))
+        for a in range(r):
+            for o in range(s):
+                yr[a, o] = yt[o, a]
+        w = wbuf[: s * s].reshape((s, s))
+        _gemm_rows(zt, yr, w)
+    for o in range(s):
+        col = o0 + o * ld
+        for x in range(o, s):
+            v = _dot_rows(linv, x, linv, o, x, s)
+            sb[col + x] = v + (w[x, o] if big else _dot_rows(zt, x, yt, o, 0, r))
+        for a in range(r):
+            sb[col + s + a] = -zt[o, a]
+
+
+@nb.njit(cache=True)
+def _selinv_workspace(starts, rptr):  # pragma: no cover - compiled
+    """Work buffers of :func:`_selinv_node`, sized for the largest supernode."""
+    ns = starts.size - 1
+    maxr = 1
+    maxs = 1
+    big_r = 1
+    for k in range(ns):
+        s = starts[k + 1] - starts[k]
+        r = rptr[k + 1] - rptr[k] - s
+        maxs = max(maxs, s)
+        maxr = max(maxr, r)
+        if s * r * r >= _BLAS_MIN:
+            big_r = max(big_r, r)
+    return (np.empty(maxr * maxs), np.empty(maxr * maxs), np.empty(maxr), np.empty(big_r * big_r),
+            np.empty(maxs * maxs), np.empty(maxr * maxs), np.empty((maxs, maxs)),
+            np.empty(maxr, np.int64), big_r)
+
+
+@nb.njit(cache=True, parallel=True)
+def _takahashi_super(starts, rptr, rows, off, snode, lb, top, glo, ghi, gptr):  # pragma: no cover - compiled
     """Elements of (L Lᵀ)⁻¹ on the supernodal blocks of L (same layout as ``lb``).
 
     For supernode K with diagonal block L_KK and rows I below it (Σ_II known from the
@@ -465,132 +638,21 @@ def _takahashi_super(starts, rptr, rows, off, snode, lb):  # pragma: no cover - 
     (the blocked form of the Takahashi recursions). Σ_II is read column by column from the
     blocks of the ancestors (every pair of rows of I lies in the block holding the smaller
     row) and multiplied at once into all columns of Y; no dense Σ_II is formed.
+
+    The supernodes in ``top`` (ancestors of all the others, in decreasing order) come first;
+    then the groups of disjoint subtrees (supernode ranges glo[t]:ghi[t] for gptr[g] <= t <
+    gptr[g + 1]) run in parallel. Every supernode does the same arithmetic whatever the
+    schedule, so results do not depend on the number of threads.
     """
-    ns = starts.size - 1
-    maxr = 1
-    maxs = 1
-    for k in range(ns):
-        s = starts[k + 1] - starts[k]
-        maxs = max(maxs, s)
-        maxr = max(maxr, rptr[k + 1] - rptr[k] - s)
     sb = np.zeros(lb.size)
-    ybuf = np.empty(maxr * maxs)
-    zbuf = np.empty(maxr * maxs)
-    gcol = np.empty(maxr)
-    big_r = 1
-    for k in range(ns):
-        s = starts[k + 1] - starts[k]
-        r = rptr[k + 1] - rptr[k] - s
-        if s * r * r >= _BLAS_MIN:
-            big_r = max(big_r, r)
-    gbuf = np.empty(big_r * big_r)
-    wbuf = np.empty(maxs * maxs)
-    yrbuf = np.empty(maxr * maxs)
-    linv = np.empty((maxs, maxs))
-    rel = np.empty(maxr, np.int64)
-    for k in range(ns - 1, -1, -1):
-        f = starts[k]
-        s = starts[k + 1] - f
-        r0 = rptr[k]
-        ld = rptr[k + 1] - r0
-        r = ld - s
-        o0 = off[k]
-        yt = ybuf[: s * r].reshape((s, r))
-        zt = zbuf[: s * r].reshape((s, r))
-        # Yᵀ = L_KK⁻ᵀ L_IKᵀ (back substitution over the columns of the supernode)
-        for o in range(s - 1, -1, -1):
-            col = o0 + o * ld
-            for a in range(r):
-                yt[o, a] = lb[col + s + a]
-            for o2 in range(o + 1, s):
-                lv = lb[col + o2]
-                if lv != 0.0:
-                    for a in range(r):
-                        yt[o, a] -= lv * yt[o2, a]
-            d = lb[col + o]
-            for a in range(r):
-                yt[o, a] /= d
-                zt[o, a] = 0.0
-        # Zᵀ = (Σ_II Y)ᵀ: Σ_II is read one column (lower part) at a time from the ancestors;
-        # large blocks gather the whole Σ_II and multiply with BLAS
-        dense = s * r * r >= _BLAS_MIN
-        g = gbuf[: r * r].reshape((r, r)) if dense else gbuf[:1].reshape((1, 1))
-        b = 0
-        while b < r:
-            c = rows[r0 + s + b]
-            p = snode[c]
-            fp = starts[p]
-            lpp = starts[p + 1]
-            rp = rptr[p]
-            ldp = rptr[p + 1] - rp
-            b1 = b
-            while b1 < r and rows[r0 + s + b1] < lpp:
-                b1 += 1
-            q = c - fp
-            for a in range(b, r):
-                i = rows[r0 + s + a]
-                while rows[rp + q] < i:
-                    q += 1
-                rel[a] = q
-            for bb in range(b, b1):
-                base = off[p] + (rows[r0 + s + bb] - fp) * ldp
-                if dense:
-                    for a in range(bb, r):
-                        v = sb[base + rel[a]]
-                        g[bb, a] = v
-                        g[a, bb] = v
-                    continue
-                for a in range(bb, r):
-                    gcol[a] = sb[base + rel[a]]
-                for o in range(s):
-                    ybo = yt[o, bb]
-                    for a in range(bb + 1, r):
-                        zt[o, a] += ybo * gcol[a]
-                    s0 = gcol[bb] * ybo
-                    s1 = 0.0
-                    s2 = 0.0
-                    s3 = 0.0
-                    a = bb + 1
-                    while a + 3 < r:
-                        s0 += gcol[a] * yt[o, a]
-                        s1 += gcol[a + 1] * yt[o, a + 1]
-                        s2 += gcol[a + 2] * yt[o, a + 2]
-                        s3 += gcol[a + 3] * yt[o, a + 3]
-                        a += 4
-                    while a < r:
-                        s0 += gcol[a] * yt[o, a]
-                        a += 1
-                    zt[o, bb] += (s0 + s1) + (s2 + s3)
-            b = b1
-        if dense:
-            _gemm_rows(yt, g, zt)
-        # L_KK⁻¹, stored by columns: linv[o, t] = (L_KK⁻¹)[t, o] (forward substitution)
-        for o in range(s):
-            for t in range(s):
-                linv[o, t] = 0.0
-            linv[o, o] = 1.0
-            for u in range(o, s):
-                col = o0 + u * ld
-                xu = linv[o, u] / lb[col + u]
-                linv[o, u] = xu
-                for t in range(u + 1, s):
-                    linv[o, t] -= lb[col + t] * xu
-        # Σ_KK = L_KK⁻ᵀ L_KK⁻¹ + Zᵀ Y (lower triangle); Σ_IK = −Z
-        big = s * s * r >= _BLAS_MIN
-        if big:  # W = Zᵀ Y with Y (r x s) stored by rows
-            yr = yrbuf[: r * s].reshape((r, s))
-            for a in range(r):
-                for o in range(s):
-                    yr[a, o] = yt[o, a]
-            w = wbuf[: s * s].reshape((s, s))
-            _gemm_rows(zt, yr, w)
-        for o in range(s):
-            col = o0 + o * ld
-            for x in range(o, s):
-                v = _dot_rows(linv, x, linv, o, x, s)
-                sb[col + x] = v + (w[x, o] if big else _dot_rows(zt, x, yt, o, 0, r))
-            for a in range(r):
-                sb[col + s + a] = -zt[o, a]
+    ws = _selinv_workspace(starts, rptr)
+    for t in range(top.size):
+        _selinv_node(top[t], starts, rptr, rows, off, snode, lb, sb, ws)
+    for g in nb.prange(gptr.size - 1):
+        wg = _selinv_workspace(starts, rptr)
+        for t in range(gptr[g], gptr[g + 1]):
+            for k in range(ghi[t] - 1, glo[t] - 1, -1):
+                _selinv_node(k, starts, rptr, rows, off, snode, lb, sb, wg)
     return sb
 
 
@@ -801,6 +863,63 @@ class _DiagonalPrefix:
         return np.vstack([x1, x2])
 
 
+class _Supernodes(NamedTuple):
+    """Supernodal blocks of L for the selected inverse (see :meth:`SparseCholesky._supernodal`)."""
+
+    starts: np.ndarray  # first (postordered) column of each supernode, then n
+    rptr: np.ndarray  # row lists rows[rptr[k]:rptr[k + 1]] of the supernodes
+    rows: np.ndarray
+    off: np.ndarray  # first position of each block
+    snode: np.ndarray  # supernode of each postordered column
+    to_block: np.ndarray  # block position of each entry of the column-wise storage of L
+    diag: np.ndarray  # block position of each diagonal entry (postordered)
+    where: np.ndarray  # postordered position of each original index
+    top: np.ndarray  # supernodes done first, in decreasing order
+    glo: np.ndarray  # subtrees (supernode ranges glo:ghi) done in parallel, grouped by gptr
+    ghi: np.ndarray
+    gptr: np.ndarray
+    label: np.ndarray  # group of each column in the given order (-1: top)
+
+
+def _subtree_groups(sparent: np.ndarray, work: np.ndarray, parts: int):
+    """Split a postordered forest into a top part and ``parts`` groups of disjoint subtrees of
+    about equal work: the heaviest subtree is opened (its root goes to the top) until a
+    largest-first assignment of the subtrees balances the groups within 5 % (or the top holds
+    half of the work). Returns (top in decreasing order, range starts, range ends, group pointers).
+    """
+    ns = sparent.size
+    wsub, count = _subtree_sums(sparent, work)
+    total = float(work.sum())
+    cands = [int(k) for k in np.flatnonzero(sparent < 0)]
+    top: list[int] = []
+    top_work = 0.0
+    groups: list[list[int]] = [cands]
+    while parts > 1 and cands:
+        cands.sort(key=lambda k: (-wsub[k], k))
+        bins = np.zeros(parts)
+        groups = [[] for _ in range(parts)]
+        for c in cands:
+            g = int(np.argmin(bins))
+            bins[g] += wsub[c]
+            groups[g].append(c)
+        if bins.max() <= 1.05 * bins.mean() or top_work >= 0.5 * total or len(top) >= 4096:
+            break
+        heavy = cands.pop(0)
+        top.append(heavy)
+        top_work += work[heavy]
+        cands.extend(int(c) for c in np.flatnonzero(sparent[max(0, heavy - count[heavy] + 1):heavy]
+                                                   == heavy) + max(0, heavy - count[heavy] + 1))
+        groups = [cands]
+    glo, ghi, gptr = [], [], [0]
+    for grp in groups:
+        for k in sorted(grp):
+            glo.append(k - count[k] + 1)
+            ghi.append(k + 1)
+        gptr.append(len(glo))
+    as_int = lambda v: np.asarray(v, dtype=np.int64)  # noqa: E731
+    return as_int(sorted(top, reverse=True)), as_int(glo), as_int(ghi), as_int(gptr)
+
+
 #: smallest share of the columns in a diagonal prefix for which it is eliminated in closed form
 _PREFIX_SHARE = 0.1
 
@@ -986,7 +1105,7 @@ class SparseCholesky:
         return out[:, 0] if vec else out
 
     # ------------------------------------------------ selected inverse
-    def _supernodal(self):
+    def _supernodal(self) -> _Supernodes:
         """Relaxed supernodes of L in a postorder of the elimination tree (once per pattern).
 
         A postorder is an equivalent reordering (same fill, same factor up to the symmetric
@@ -1011,18 +1130,35 @@ class SparseCholesky:
             to_block[lint.data.astype(np.int64) - 1] = pos
             d = np.arange(n, dtype=np.int64)
             diag = off[snode[d]] + (d - starts[snode[d]]) * (rptr[snode[d] + 1] - rptr[snode[d]] + 1)
-            # original index -> postordered position
-            where = ipost[self.inverse_order]
-            self._super = (starts, rptr, rows, off, snode, to_block, diag, where)
+            # tree of supernodes and the split into a sequential top and parallel groups
+            last = starts[1:] - 1
+            sparent = np.where(ppar[last] >= 0, snode[np.maximum(ppar[last], 0)], -1).astype(np.int64)
+            s = np.diff(starts).astype(float)
+            r = (np.diff(rptr) - np.diff(starts)).astype(float)
+            work = s * r * r + s * s * r + s ** 3 / 3.0 + r * r + 8.0
+            top, glo, ghi, gptr = _subtree_groups(sparent, work, max(1, nb.get_num_threads()))
+            sgroup = np.full(starts.size - 1, -1, np.int64)
+            for g in range(gptr.size - 1):
+                for t in range(gptr[g], gptr[g + 1]):
+                    sgroup[glo[t]:ghi[t]] = g
+            self._super = _Supernodes(starts, rptr, rows, off, snode, to_block, diag,
+                                      ipost[self.inverse_order], top, glo, ghi, gptr, sgroup[snode[ipost]])
         return self._super
 
     def selected_inverse(self) -> np.ndarray:
         """Elements of A⁻¹ on the pattern of L (permuted layout of :attr:`lp`, :attr:`li`; use
         :meth:`inverse_at` and :meth:`inverse_diagonal` for original indexing)."""
-        starts, rptr, rows, off, snode, to_block, _, _ = self._supernodal()
-        lb = np.zeros(int(off[-1]))
-        lb[to_block] = self.lx
-        self._sb = _takahashi_super(starts, rptr, rows, off, snode, lb)
+        b = self._supernodal()
+        if self._lx is None:  # the column-wise factor of the last values, subtrees in parallel
+            _, lp, li, rp, rc, rpos = self._symbolic()
+            lx = np.zeros(int(lp[-1]))
+            _numeric_rows_groups(self.n, self._ap, self._ai, self._data, lp, li, rp, rc, rpos, lx,
+                                 b.label, b.gptr.size - 1)
+            self._lx = lx
+        lb = np.zeros(int(b.off[-1]))
+        lb[b.to_block] = self._lx
+        self._sb = _takahashi_super(b.starts, b.rptr, b.rows, b.off, b.snode, lb, b.top, b.glo, b.ghi,
+                                    b.gptr)
         self._sx = None
         return self.sx
 
@@ -1030,18 +1166,18 @@ class SparseCholesky:
     def sx(self) -> np.ndarray | None:
         """Last selected inverse on the pattern of L (layout of :attr:`lp`, :attr:`li`), or None."""
         if self._sx is None and self._sb is not None:
-            self._sx = self._sb[self._supernodal()[5]]
+            self._sx = self._sb[self._supernodal().to_block]
         return self._sx
 
     def inverse_at(self, rows: np.ndarray, cols: np.ndarray) -> np.ndarray:
         """Elements (A⁻¹)[rows, cols] in original indexing; must lie in the pattern of L + Lᵀ
         (NaN outside the supernodal blocks of L, a superset of that pattern)."""
-        starts, rptr, srows, off, snode, _, _, where = self._supernodal()
-        r = where[np.asarray(rows, dtype=np.int64)]
-        c = where[np.asarray(cols, dtype=np.int64)]
-        return _lookup_super(starts, rptr, srows, off, snode, self._sb, r, c)
+        b = self._supernodal()
+        r = b.where[np.asarray(rows, dtype=np.int64)]
+        c = b.where[np.asarray(cols, dtype=np.int64)]
+        return _lookup_super(b.starts, b.rptr, b.rows, b.off, b.snode, self._sb, r, c)
 
     def inverse_diagonal(self) -> np.ndarray:
         """Diagonal of A⁻¹ in original indexing."""
-        sup = self._supernodal()
-        return self._sb[sup[6][sup[7]]]
+        b = self._supernodal()
+        return self._sb[b.diag[b.where]]
