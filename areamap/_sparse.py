@@ -445,7 +445,7 @@ def _subtree_sums(parent, work):  # pragma: no cover - compiled
 
 
 #: supernodes with at least this many multiply-adds in a product form it densely (:func:`_gemm_rows`)
-_BLAS_MIN = 1 << 14
+_DENSE_MIN = 1 << 14
 
 
 @nb.njit(cache=True)
@@ -529,8 +529,8 @@ def _selinv_node(k, starts, rptr, rows, off, snode, lb, sb, ws):  # pragma: no c
             yt[o, a] /= d
             zt[o, a] = 0.0
     # Zᵀ = (Σ_II Y)ᵀ: Σ_II is read one column (lower part) at a time from the ancestors;
-    # large blocks gather the whole Σ_II and multiply with BLAS
-    dense = s * r * r >= _BLAS_MIN
+    # large blocks gather the whole Σ_II and multiply it densely (:func:`_gemm_rows`)
+    dense = s * r * r >= _DENSE_MIN
     g = gbuf[: r * r].reshape((r, r)) if dense else gbuf[:1].reshape((1, 1))
     b = 0
     while b < r:
@@ -593,7 +593,7 @@ def _selinv_node(k, starts, rptr, rows, off, snode, lb, sb, ws):  # pragma: no c
             for t in range(u + 1, s):
                 linv[o, t] -= lb[col + t] * xu
     # Σ_KK = L_KK⁻ᵀ L_KK⁻¹ + Zᵀ Y (lower triangle); Σ_IK = −Z
-    big = s * s * r >= _BLAS_MIN
+    big = s * s * r >= _DENSE_MIN
     if big:  # W = Zᵀ Y with Y (r x s) stored by rows
         yr = yrbuf[: r * s].reshape((r, s))
         for a in range(r):
@@ -622,7 +622,7 @@ def _selinv_workspace(starts, rptr):  # pragma: no cover - compiled
         r = rptr[k + 1] - rptr[k] - s
         maxs = max(maxs, s)
         maxr = max(maxr, r)
-        if s * r * r >= _BLAS_MIN:
+        if s * r * r >= _DENSE_MIN:
             big_r = max(big_r, r)
     return (np.empty(maxr * maxs), np.empty(maxr * maxs), np.empty(maxr), np.empty(big_r * big_r),
             np.empty(maxs * maxs), np.empty(maxr * maxs), np.empty((maxs, maxs)),
@@ -920,6 +920,10 @@ def _subtree_groups(sparent: np.ndarray, work: np.ndarray, parts: int):
     return as_int(sorted(top, reverse=True)), as_int(glo), as_int(ghi), as_int(gptr)
 
 
+#: estimated multiply-adds of a selected inverse from which subtrees run in parallel (below it, waking
+#: threads costs more than it saves; about 4e7 for 10,000 areas of BYM2, 8e8 for 100,000)
+_PARALLEL_WORK = 2e8
+
 #: smallest share of the columns in a diagonal prefix for which it is eliminated in closed form
 _PREFIX_SHARE = 0.1
 
@@ -1136,7 +1140,8 @@ class SparseCholesky:
             s = np.diff(starts).astype(float)
             r = (np.diff(rptr) - np.diff(starts)).astype(float)
             work = s * r * r + s * s * r + s ** 3 / 3.0 + r * r + 8.0
-            top, glo, ghi, gptr = _subtree_groups(sparent, work, max(1, nb.get_num_threads()))
+            parts = max(1, nb.get_num_threads()) if work.sum() >= _PARALLEL_WORK else 1
+            top, glo, ghi, gptr = _subtree_groups(sparent, work, parts)
             sgroup = np.full(starts.size - 1, -1, np.int64)
             for g in range(gptr.size - 1):
                 for t in range(gptr[g], gptr[g + 1]):
