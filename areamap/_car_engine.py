@@ -843,7 +843,7 @@ MODE_ITERATIONS = 20
 #: mode predicted along its tangent needs one Newton iteration, large enough for second differences
 STENCIL_STEP = (1e-3, 2e-3)
 #: the mode search stops when the predicted gain of a further Newton step is below this (log units)
-MODE_GAIN_TOL = 1e-4
+MODE_GAIN_TOL = 1e-3
 
 
 def _stencil(f, c, f0, h):
@@ -882,8 +882,8 @@ def _newton_search(f, theta0, bounds):
     halved until f does not decrease; a full step that gained at least what was predicted is
     doubled while f keeps rising, which follows the flat approach of logit(φ) to 1 in a few
     evaluations) and stops when the predicted gain g'(-H)^-1 g / 2 falls below MODE_GAIN_TOL
-    log units (the mode then lies within about 0.015 posterior standard deviations). The Hessian of the last stencil, centred within that
-    distance of the mode, is returned for the integration design, so the search and the Hessian
+    log units (the mode then lies within about sqrt(2 x 1e-3) = 0.045 posterior standard
+    deviations). The Hessian of the last stencil, centred within that distance of the mode, is returned for the integration design, so the search and the Hessian
     share their evaluations. Coordinates held at a bound (gradient pointing outwards) are dropped
     from the Newton system.
 
