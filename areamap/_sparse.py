@@ -343,6 +343,45 @@ def _postorder(parent):  # pragma: no cover - compiled
 
 
 @nb.njit(cache=True)
+def _permuted_factor_pattern(lp, li, post, ipost):  # pragma: no cover - compiled
+    """Pattern of P L Pᵀ for a postorder P (still lower triangular): column pointers, sorted row
+    indices, and for each entry its position in the column-wise storage (lp, li)."""
+    n = lp.size - 1
+    plp = np.zeros(n + 1, np.int64)
+    for t in range(n):
+        plp[t + 1] = plp[t] + lp[post[t] + 1] - lp[post[t]]
+    pli = np.empty(lp[n], np.int64)
+    src = np.empty(lp[n], np.int64)
+    for t in range(n):
+        j = post[t]
+        m = lp[j + 1] - lp[j]
+        rr = np.empty(m, np.int64)
+        for p in range(m):
+            rr[p] = ipost[li[lp[j] + p]]
+        srt = np.argsort(rr)
+        for p in range(m):
+            pli[plp[t] + p] = rr[srt[p]]
+            src[plp[t] + p] = lp[j] + srt[p]
+    return plp, pli, src
+
+
+@nb.njit(cache=True)
+def _scatter(dst, idx, values):  # pragma: no cover - compiled
+    """dst[idx] = values."""
+    for p in range(idx.size):
+        dst[idx[p]] = values[p]
+
+
+@nb.njit(cache=True)
+def _gather(values, idx):  # pragma: no cover - compiled
+    """values[idx]."""
+    out = np.empty(idx.size)
+    for p in range(idx.size):
+        out[p] = values[idx[p]]
+    return out
+
+
+@nb.njit(cache=True)
 def _relaxed_supernodes(lp, li, parent):  # pragma: no cover - compiled
     """Partition of the (postordered) columns into relaxed supernodes.
 
@@ -445,7 +484,9 @@ def _subtree_sums(parent, work):  # pragma: no cover - compiled
 
 
 #: supernodes with at least this many multiply-adds in a product form it densely (:func:`_gemm_rows`)
-_DENSE_MIN = 1 << 14
+_DENSE_MIN = 1 << 12
+#: largest Σ_II gathered densely (its buffer holds _DENSE_MAX_ROWS² values, 8 MB)
+_DENSE_MAX_ROWS = 1024
 
 
 @nb.njit(cache=True)
@@ -530,7 +571,7 @@ def _selinv_node(k, starts, rptr, rows, off, snode, lb, sb, ws):  # pragma: no c
             zt[o, a] = 0.0
     # Zᵀ = (Σ_II Y)ᵀ: Σ_II is read one column (lower part) at a time from the ancestors;
     # large blocks gather the whole Σ_II and multiply it densely (:func:`_gemm_rows`)
-    dense = s * r * r >= _DENSE_MIN
+    dense = s * r * r >= _DENSE_MIN and r <= _DENSE_MAX_ROWS
     g = gbuf[: r * r].reshape((r, r)) if dense else gbuf[:1].reshape((1, 1))
     b = 0
     while b < r:
@@ -622,7 +663,7 @@ def _selinv_workspace(starts, rptr):  # pragma: no cover - compiled
         r = rptr[k + 1] - rptr[k] - s
         maxs = max(maxs, s)
         maxr = max(maxr, r)
-        if s * r * r >= _DENSE_MIN:
+        if s * r * r >= _DENSE_MIN and r <= _DENSE_MAX_ROWS:
             big_r = max(big_r, r)
     return (np.empty(maxr * maxs), np.empty(maxr * maxs), np.empty(maxr), np.empty(big_r * big_r),
             np.empty(maxs * maxs), np.empty(maxr * maxs), np.empty((maxs, maxs)),
@@ -1121,17 +1162,12 @@ class SparseCholesky:
             post = _postorder(parent)
             ipost = np.empty(n, np.int64)
             ipost[post] = np.arange(n)
-            # pattern of L in the postorder; data = 1 + position in the column-wise storage
-            lmat = sp.csc_matrix((np.arange(1.0, lp[-1] + 1.0), li, lp), shape=(n, n))
-            lint = sp.csc_matrix(lmat[post][:, post])
-            lint.sort_indices()
-            plp = lint.indptr.astype(np.int64)
-            pli = lint.indices.astype(np.int64)
+            plp, pli, src = _permuted_factor_pattern(lp, li, post, ipost)
             ppar = np.where(parent[post] >= 0, ipost[np.maximum(parent[post], 0)], -1).astype(np.int64)
             starts = _relaxed_supernodes(plp, pli, ppar)
             rptr, rows, off, snode, pos = _supernode_layout(plp, pli, starts)
             to_block = np.empty(int(lp[-1]), np.int64)
-            to_block[lint.data.astype(np.int64) - 1] = pos
+            to_block[src] = pos
             d = np.arange(n, dtype=np.int64)
             diag = off[snode[d]] + (d - starts[snode[d]]) * (rptr[snode[d] + 1] - rptr[snode[d]] + 1)
             # tree of supernodes and the split into a sequential top and parallel groups
@@ -1161,7 +1197,7 @@ class SparseCholesky:
                                  b.label, b.gptr.size - 1)
             self._lx = lx
         lb = np.zeros(int(b.off[-1]))
-        lb[b.to_block] = self._lx
+        _scatter(lb, b.to_block, self._lx)
         self._sb = _takahashi_super(b.starts, b.rptr, b.rows, b.off, b.snode, lb, b.top, b.glo, b.ghi,
                                     b.gptr)
         self._sx = None
@@ -1171,7 +1207,7 @@ class SparseCholesky:
     def sx(self) -> np.ndarray | None:
         """Last selected inverse on the pattern of L (layout of :attr:`lp`, :attr:`li`), or None."""
         if self._sx is None and self._sb is not None:
-            self._sx = self._sb[self._supernodal().to_block]
+            self._sx = _gather(self._sb, self._supernodal().to_block)
         return self._sx
 
     def inverse_at(self, rows: np.ndarray, cols: np.ndarray) -> np.ndarray:
