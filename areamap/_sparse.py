@@ -670,8 +670,19 @@ def _selinv_workspace(starts, rptr):  # pragma: no cover - compiled
             np.empty(maxr, np.int64), big_r)
 
 
+@nb.njit(cache=True)
+def _takahashi_super(starts, rptr, rows, off, snode, lb):  # pragma: no cover - compiled
+    """Elements of (L Lᵀ)⁻¹ on the supernodal blocks of L (same layout as ``lb``), supernodes in
+    decreasing order; see :func:`_takahashi_super_groups` for the recursions."""
+    sb = np.zeros(lb.size)
+    ws = _selinv_workspace(starts, rptr)
+    for k in range(starts.size - 2, -1, -1):
+        _selinv_node(k, starts, rptr, rows, off, snode, lb, sb, ws)
+    return sb
+
+
 @nb.njit(cache=True, parallel=True)
-def _takahashi_super(starts, rptr, rows, off, snode, lb, top, glo, ghi, gptr):  # pragma: no cover - compiled
+def _takahashi_super_groups(starts, rptr, rows, off, snode, lb, top, glo, ghi, gptr):  # pragma: no cover
     """Elements of (L Lᵀ)⁻¹ on the supernodal blocks of L (same layout as ``lb``).
 
     For supernode K with diagonal block L_KK and rows I below it (Σ_II known from the
@@ -1190,16 +1201,20 @@ class SparseCholesky:
         """Elements of A⁻¹ on the pattern of L (permuted layout of :attr:`lp`, :attr:`li`; use
         :meth:`inverse_at` and :meth:`inverse_diagonal` for original indexing)."""
         b = self._supernodal()
-        if self._lx is None:  # the column-wise factor of the last values, subtrees in parallel
+        split = b.gptr.size > 2  # parallel groups of subtrees (large factors only)
+        if self._lx is None and split:  # the column-wise factor of the last values
             _, lp, li, rp, rc, rpos = self._symbolic()
             lx = np.zeros(int(lp[-1]))
             _numeric_rows_groups(self.n, self._ap, self._ai, self._data, lp, li, rp, rc, rpos, lx,
                                  b.label, b.gptr.size - 1)
             self._lx = lx
         lb = np.zeros(int(b.off[-1]))
-        _scatter(lb, b.to_block, self._lx)
-        self._sb = _takahashi_super(b.starts, b.rptr, b.rows, b.off, b.snode, lb, b.top, b.glo, b.ghi,
-                                    b.gptr)
+        _scatter(lb, b.to_block, self.lx)
+        if split:
+            self._sb = _takahashi_super_groups(b.starts, b.rptr, b.rows, b.off, b.snode, lb, b.top, b.glo,
+                                               b.ghi, b.gptr)
+        else:
+            self._sb = _takahashi_super(b.starts, b.rptr, b.rows, b.off, b.snode, lb)
         self._sx = None
         return self.sx
 
