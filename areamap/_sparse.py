@@ -15,9 +15,15 @@ set of kernels compiled with numba:
   of values with the same (or a smaller) pattern: CHOLMOD's supernodal kernel (dense
   BLAS on blocks of columns with the same pattern) or, as a fallback and reference,
   an up-looking kernel;
-* triangular solves, log-determinant, and the selected inverse: the elements of
-  A⁻¹ on the pattern of L (Takahashi recursions), from the column-wise factor of
-  the up-looking kernel, computed only when a selected inverse is asked for.
+* triangular solves and log-determinant;
+* the selected inverse: the elements of A⁻¹ on the pattern of L (Takahashi
+  recursions), computed only when asked for. The column-wise factor of the last
+  values (up-looking kernel, same arithmetic as ever) is copied into dense blocks of
+  relaxed supernodes of a postorder of the elimination tree, and the recursions run
+  block by block (one gather of Σ_II per supernode instead of one per column, dense
+  products for the large blocks). For large factors, disjoint subtrees of the
+  elimination tree run in parallel; every entry is computed by the same operations
+  whatever the schedule, so results are bit-identical on any number of threads.
 
 References
 ----------
@@ -30,6 +36,14 @@ tree, row-subtree reach, up-looking Cholesky).
 
 Rue, H. & Held, L. (2005). *Gaussian Markov Random Fields: Theory and Applications*.
 Chapman & Hall/CRC, section 2.3 (Takahashi recursions for the marginal variances).
+
+Ashcraft, C. & Grimes, R. (1989). The influence of relaxed supernode partitions on the
+multifrontal method. *ACM Transactions on Mathematical Software* 15(4), 291–309
+(amalgamation of supernodes at the price of explicit zeros).
+
+Takahashi, K., Fagan, J. & Chen, M.-S. (1973). Formation of a sparse bus impedance matrix
+and its application to short circuit study. *Proc. 8th PICA Conference*, 63–69 (the
+recursions; the blocked form follows from Σ L = L⁻ᵀ column block by column block).
 """
 
 from __future__ import annotations
@@ -119,37 +133,6 @@ def _symbolic(n, ap, ai, parent):  # pragma: no cover - compiled
 
 
 @nb.njit(cache=True)
-def _numeric(n, ap, ai, ax, parent, lp, li, lx):  # pragma: no cover - compiled
-    """Up-looking numeric Cholesky into lx; returns -1 on success or the failing column."""
-    x = np.zeros(n)
-    s = np.empty(n, np.int64)
-    w = np.full(n, -1, np.int64)
-    c = lp[:n].copy()
-    for k in range(n):
-        top = _ereach(k, ap, ai, parent, s, w, n)
-        x[k] = 0.0
-        for p in range(ap[k], ap[k + 1]):
-            if ai[p] <= k:
-                x[ai[p]] += ax[p]
-        d = x[k]
-        x[k] = 0.0
-        for t in range(top, n):
-            i = s[t]
-            lki = x[i] / lx[lp[i]]
-            x[i] = 0.0
-            for p in range(lp[i] + 1, c[i]):
-                x[li[p]] -= lx[p] * lki
-            d -= lki * lki
-            lx[c[i]] = lki
-            c[i] += 1
-        if not d > 0.0:
-            return k
-        lx[c[k]] = np.sqrt(d)
-        c[k] += 1
-    return -1
-
-
-@nb.njit(cache=True)
 def _row_patterns(n, ap, ai, parent, lp):  # pragma: no cover - compiled
     """Row patterns of L below the diagonal, in the topological order of :func:`_ereach`.
 
@@ -201,7 +184,8 @@ def _numeric_row(k, ap, ai, ax, lp, li, rp, rc, rpos, lx, x):  # pragma: no cove
 
 @nb.njit(cache=True)
 def _numeric_rows(n, ap, ai, ax, lp, li, rp, rc, rpos, lx):  # pragma: no cover - compiled
-    """Same arithmetic as :func:`_numeric` (bit-identical), with the row patterns precomputed."""
+    """Up-looking numeric Cholesky into lx (Davis 2006, ch. 4), the row patterns of L precomputed;
+    returns -1 on success or the failing column."""
     x = np.zeros(n)
     for k in range(n):
         if not _numeric_row(k, ap, ai, ax, lp, li, rp, rc, rpos, lx, x):
@@ -721,20 +705,6 @@ def _lookup_super(starts, rptr, rows, off, snode, sb, ri, ci):  # pragma: no cov
         o = c - starts[k]
         q = _find(rows, rptr[k] + o, rptr[k + 1], r)
         out[t] = sb[off[k] + o * (rptr[k + 1] - rptr[k]) + q - rptr[k]] if q >= 0 else np.nan
-    return out
-
-
-@nb.njit(cache=True)
-def _lookup(lp, li, sx, rows, cols):  # pragma: no cover - compiled
-    """sx at (max(r, c), min(r, c)) for each pair; NaN when the pair is not in the pattern."""
-    out = np.empty(rows.size)
-    for t in range(rows.size):
-        r = rows[t]
-        c = cols[t]
-        if r < c:
-            r, c = c, r
-        q = _find(li, lp[c], lp[c + 1], r)
-        out[t] = sx[q] if q >= 0 else np.nan
     return out
 
 
