@@ -23,6 +23,8 @@ hyperparameter integration of ``_car_engine``; it only supplies its own latent f
 
 from __future__ import annotations
 
+import copy
+
 import numpy as np
 import scipy.sparse as sp
 from scipy.special import gammaln
@@ -51,17 +53,25 @@ def rw_structure(n_weeks: int, order: int) -> tuple[np.ndarray, float]:
 
 
 class _SpaceTimeLatent:
-    """Latent field of the space-time model; ``laplace`` as in ``_car_engine._LatentModel``."""
+    """Latent field of the space-time model; ``laplace`` as in ``_car_engine._LatentModel``.
+
+    The Hessian of the negative log posterior is H = [[D, −τ_d M], [−τ_d Mᵀ, Q_w + τ_d MᵀM]]
+    with D = diag(τ_d + μ_it) on the linear predictors (μ_it = E_it exp(eta_it), 0 where the count
+    is missing), w = (v, u, g, beta) and M the map w ↦ prior mean of eta. D is eliminated in
+    closed form: only the Schur complement S = Q_w + Mᵀ diag(c) M, c_it = τ_d μ_it / (τ_d + μ_it),
+    of size n + n_structured + W + p + 1 is factorized (once per Newton step), and its entries are
+    summed directly from the per-district and per-week sums of c. log det H = Σ log D + log det S;
+    Var(eta_it) = 1/D_it + (τ_d/D_it)² m_itᵀ S⁻¹ m_it, read from the selected inverse of S
+    (Rue & Held 2005, section 2.3; the block elimination is the usual Schur-complement identity).
+    """
 
     def __init__(self, y, e, xcov, graph: eng._GraphStructure, *, rw_order=1, intercept_sd=5.0,
                  coefficient_sd=5.0, fixed_phi=None):
         n, w = y.shape
         self.n, self.w = n, w
-        self.nw = n * w
-        self.obs = np.isfinite(y).ravel()
-        self.y = np.where(self.obs, y.ravel(), 0.0)
-        self.e = np.where(self.obs, e.ravel(), 0.0)
+        self.nw = nw = n * w
         self.log_e = np.log(e.ravel())
+        self._set_data(y, e)
         self.g = gs = graph
         self.fixed_phi = fixed_phi
         ns = gs.n_structured
@@ -69,63 +79,82 @@ class _SpaceTimeLatent:
         self.p1 = p1
         self.x1 = np.column_stack([np.ones(n), xcov])
         self.beta_prec = np.concatenate([[1.0 / intercept_sd**2], np.full(p1 - 1, 1.0 / coefficient_sd**2)])
-        nw = self.nw
-        self.i_v = nw + np.arange(n)
-        self.i_u = nw + n + np.arange(ns)
-        self.i_g = nw + n + ns + np.arange(w)
-        self.i_beta = nw + n + ns + w + np.arange(p1)
-        self.m = nw + n + ns + w + p1
+        # w-block indices (x = (eta, w)); the i_* are the same positions in x
+        jv = np.arange(n)
+        ju = n + np.arange(ns)
+        jg = n + ns + np.arange(w)
+        jb = n + ns + w + np.arange(p1)
+        self.jv, self.ju, self.jg, self.jb = jv, ju, jg, jb
+        self.i_v, self.i_u, self.i_g, self.i_beta = nw + jv, nw + ju, nw + jg, nw + jb
+        self.m_w = n + ns + w + p1
+        self.m = nw + self.m_w
         self.rw_order = rw_order
         rt, self.rw_scale = rw_structure(w, rw_order)
         self.rank_t = w - rw_order
         # RW2 leaves the linear direction unpenalised: a proper N(0, SLOPE_SD^2) prior on the slope
         tc = np.arange(w) - (w - 1) / 2.0
         q_lin = np.outer(tc, tc) / float(tc @ tc) ** 2 / SLOPE_SD**2 if rw_order == 2 else np.zeros((w, w))
-        # per-row slots of r = eta - M w: eta_it, v_i, u_i (or padding on v_i), g_t, beta
-        row_i = np.repeat(np.arange(n), w)
-        row_t = np.tile(np.arange(w), n)
-        ucol = self.i_v.copy()
-        ucol[gs.structured] = self.i_u
-        self.slot_cols = np.column_stack([np.arange(nw), self.i_v[row_i], ucol[row_i], self.i_g[row_t],
-                                          np.broadcast_to(self.i_beta, (nw, p1))])
-        self.row_i, self.row_t = row_i, row_t
-        s = self.slot_cols.shape[1]
-        self._pairs = [(a, b) for a in range(s) for b in range(a, s)]
-        # constant prior blocks (v: I, u: scaled ICAR + ridge, g: slope prior + ridge, beta: diag)
-        zero = sp.csr_matrix((nw, nw))
-        self.q_const = sp.block_diag([zero, sp.eye(n), gs.r_scaled + eng.U_RIDGE * sp.eye(ns),
-                                      sp.csr_matrix(q_lin + G_RIDGE * np.eye(w)), sp.diags(self.beta_prec)],
-                                     format="csr")
-        self.q_rt = sp.block_diag([sp.csr_matrix((nw + n + ns, nw + n + ns)), sp.csr_matrix(rt),
-                                   sp.csr_matrix((p1, p1))], format="csr")
+        self.row_i = np.repeat(np.arange(n), w)
+        self.row_t = np.tile(np.arange(w), n)
+        # constant prior of w (v: I, u: scaled ICAR + ridge, g: slope prior + ridge, beta: diag)
+        self.qw_const = sp.block_diag([sp.eye(n), gs.r_scaled + eng.U_RIDGE * sp.eye(ns),
+                                       sp.csr_matrix(q_lin + G_RIDGE * np.eye(w)), sp.diags(self.beta_prec)],
+                                      format="csr")
+        self.qw_rt = sp.block_diag([sp.csr_matrix((n + ns, n + ns)), sp.csr_matrix(rt),
+                                    sp.csr_matrix((p1, p1))], format="csr")
         self._rt = rt
-        # constraints: sum of u per component, sum of g
+        # constraints (on w only): sum of u per component, sum of g
         rows = np.concatenate([gs.comp, np.full(w, gs.n_comp)])
-        cols = np.concatenate([self.i_u, self.i_g])
-        self.a_con = sp.csr_matrix((np.ones(ns + w), (rows, cols)), shape=(gs.n_comp + 1, self.m))
+        self.a_w = sp.csr_matrix((np.ones(ns + w), (rows, np.concatenate([ju, jg]))),
+                                 shape=(gs.n_comp + 1, self.m_w))
         self.k_con = gs.n_comp + 1
-        self._acon_t = self.a_con.T.toarray()
+        self._aw_t = self.a_w.T.toarray()
         self.log_det_aat = float(np.sum(np.log(gs.comp_sizes))) + np.log(w)
         lp_rt = np.linalg.eigvalsh(rt)[rw_order:]
         self.ld_prior_const = (gs.log_pdet_scaled + float(np.sum(np.log(lp_rt)))
                                + float(np.sum(np.log(self.beta_prec))))
-        # elimination order: eta, then (v_i, u_i) in the graph's fill-reducing order, then g, beta
-        upos = np.full(n, -1)
-        upos[gs.structured] = self.i_u
-        vu = np.column_stack([self.i_v[gs.order], upos[gs.order]]).ravel()
-        vu = vu[vu >= 0]
-        order = np.concatenate([np.arange(nw), vu, self.i_g, self.i_beta]).astype(np.int64)
-        rr = np.repeat(self.slot_cols, s, axis=1).ravel()
-        cc = np.tile(self.slot_cols, (1, s)).ravel()
-        pattern = sp.csr_matrix((np.ones(rr.size), (rr, cc)), shape=(self.m, self.m))
-        pattern = pattern + self.q_const + self.q_rt + sp.eye(self.m)
+        # entries of S = Q_w + Mᵀ diag(c) M, one block per pair of slots of a district-week
+        s = gs.structured
+        self._s = s
+        us = np.full(n, -1)
+        us[s] = ju
+        iu = np.repeat(ju, w)  # u of the structured districts' cells, row-major (district, week)
+        tu = np.tile(jg, ns)
+        blocks = {
+            "vv": (jv, jv), "vu": (jv[s], ju), "uu": (ju, ju),
+            "vg": (jv[self.row_i], jg[self.row_t]), "ug": (iu, tu), "gg": (jg, jg),
+            "vb": (np.repeat(jv, p1), np.tile(jb, n)), "ub": (np.repeat(ju, p1), np.tile(jb, ns)),
+            "gb": (np.repeat(jg, p1), np.tile(jb, w)),
+            "bb": (jb[np.triu_indices(p1)[0]], jb[np.triu_indices(p1)[1]]),
+        }
+        rr = np.concatenate([b[0] for b in blocks.values()])
+        cc = np.concatenate([b[1] for b in blocks.values()])
+        pattern = sp.csr_matrix((np.ones(rr.size), (rr, cc)), shape=(self.m_w, self.m_w))
+        pattern = pattern + pattern.T + self.qw_const + self.qw_rt + sp.eye(self.m_w)
+        # elimination order: v (coupled to no earlier column: eliminated in closed form by the
+        # factorization, without fill beyond the pattern), u in the graph's fill-reducing order, g, beta
+        uo = us[gs.order]
+        order = np.concatenate([jv, uo[uo >= 0], jg, jb]).astype(np.int64)
         self.chol = SparseCholesky(pattern, order)
-        self._pos = np.concatenate([self.chol.positions(self.slot_cols[:, a], self.slot_cols[:, b])
-                                    for a, b in self._pairs])
-        self._d_const = self._scatter(self.q_const)
-        self._d_rt = self._scatter(self.q_rt)
-        self._pos_eta = self.chol.positions(np.arange(nw), np.arange(nw))
+        self._blocks = blocks
+        self._posw = {k: self.chol.positions(r, c) for k, (r, c) in blocks.items()}
+        self._d_const = self._scatter(self.qw_const)
+        self._d_rt = self._scatter(self.qw_rt)
+        self._iu_bb = np.triu_indices(p1)
         self.stats = {}
+
+    def _set_data(self, y, e):
+        self.obs = np.isfinite(y).ravel()
+        self.y = np.where(self.obs, y.ravel(), 0.0)
+        self.e = np.where(self.obs, e.ravel(), 0.0)
+
+    def with_data(self, y):
+        """The same model for other counts ``y`` (same shape; NaN = missing), sharing the graph and
+        time constants and the symbolic factorization (used one at a time)."""
+        other = copy.copy(self)
+        other._set_data(np.asarray(y, float), np.exp(self.log_e).reshape(self.n, self.w))
+        other.stats = {}
+        return other
 
     # ------------------------------------------------------------ assembly
     def _scatter(self, mat):
@@ -148,60 +177,78 @@ class _SpaceTimeLatent:
         au = sigma * np.sqrt(phi)
         return av, au, np.exp(-2.0 * theta[2]), np.exp(-2.0 * theta[3])
 
-    def slot_values(self, av, au):
-        nw = self.nw
-        uval = np.zeros(self.n)
-        uval[self.g.structured] = au
-        return np.column_stack([np.ones(nw), -av[self.row_i], -uval[self.row_i], -np.ones(nw),
-                                -self.x1[self.row_i]])
+    def _m_apply(self, wv, av, au):
+        """M w for a w-block vector (m_w,) or matrix (m_w, k): shape (n W,) or (n W, k)."""
+        b = av.reshape((-1,) + (1,) * (wv.ndim - 1)) * wv[self.jv]
+        b[self._s] += au * wv[self.ju]
+        b = b + np.tensordot(self.x1, wv[self.jb], axes=1)
+        out = b[:, None] + wv[self.jg][None, :]
+        return out.reshape((self.nw,) + wv.shape[1:])
+
+    def _mt_apply(self, z, av, au):
+        """Mᵀ z for z of shape (n W,): a w-block vector."""
+        zm = z.reshape(self.n, self.w)
+        zn = zm.sum(axis=1)
+        out = np.empty(self.m_w)
+        out[self.jv] = av * zn
+        out[self.ju] = au * zn[self._s]
+        out[self.jg] = zm.sum(axis=0)
+        out[self.jb] = self.x1.T @ zn
+        return out
 
     def _mw(self, x, av, au):
         """M w: prior mean of eta given (v, u, g, beta)."""
-        n, w = self.n, self.w
-        b = av * x[self.i_v]
-        b[self.g.structured] += au * x[self.i_u]
-        b = b + self.x1 @ x[self.i_beta]
-        return (b[:, None] + x[self.i_g][None, :]).ravel()
+        return self._m_apply(x[self.nw:], av, au)
 
     def _qx(self, x, coefs):
         """Q(θ) x without forming Q."""
         av, au, tau_t, tau_d = coefs
-        gs = self.g
-        r = tau_d * (x[: self.nw] - self._mw(x, av, au))
-        rm = r.reshape(self.n, self.w)
-        rsum = rm.sum(axis=1)
-        out = self.q_const @ x
-        out[: self.nw] += r
-        out[self.i_v] -= av * rsum
-        out[self.i_u] -= au * rsum[gs.structured]
-        out[self.i_g] += tau_t * (self._rt @ x[self.i_g]) - rm.sum(axis=0)
-        out[self.i_beta] -= self.x1.T @ rsum
+        nw = self.nw
+        r = tau_d * (x[:nw] - self._mw(x, av, au))
+        out = np.empty(self.m)
+        out[:nw] = r
+        xw = x[nw:]
+        ow = self.qw_const @ xw - self._mt_apply(r, av, au)
+        ow[self.jg] += tau_t * (self._rt @ xw[self.jg])
+        out[nw:] = ow
         return out
 
-    def _prior_data(self, coefs):
-        av, au, tau_t, tau_d = coefs
-        v = self.slot_values(av, au)
-        prod = np.concatenate([v[:, a] * v[:, b] for a, b in self._pairs])
-        return tau_d * np.bincount(self._pos, weights=prod, minlength=self.chol.n_upper) + self._d_const \
-            + tau_t * self._d_rt
+    def _schur_data(self, qdata, c, av, au):
+        """Values of S = Q_w + Mᵀ diag(c) M on the analysed pattern."""
+        s, p = self._s, self._posw
+        cm = c.reshape(self.n, self.w)
+        cn = cm.sum(axis=1)
+        xc = self.x1 * cn[:, None]
+        data = qdata.copy()
+        data[p["vv"]] += av**2 * cn
+        data[p["vu"]] += av[s] * au * cn[s]
+        data[p["uu"]] += au**2 * cn[s]
+        data[p["vg"]] += (av[:, None] * cm).ravel()
+        data[p["ug"]] += (au * cm[s]).ravel()
+        data[p["gg"]] += cm.sum(axis=0)
+        data[p["vb"]] += (av[:, None] * xc).ravel()
+        data[p["ub"]] += (au * xc[s]).ravel()
+        data[p["gb"]] += (cm.T @ self.x1).ravel()
+        data[p["bb"]] += (self.x1.T @ xc)[self._iu_bb]
+        return data
 
     def _objective(self, x, coefs, e):
         eta = np.clip(x[: self.nw], -60.0, 60.0)
         return float(np.sum(self.y * eta - e * np.exp(eta)) - 0.5 * eng._dot(x, self._qx(x, coefs)))
 
     def _newton(self, x, coefs, e, theta, max_iter=60, tol=1e-7):
-        qdata = self._prior_data(coefs)
+        av, au, tau_t, tau_d = coefs
+        qdata = self._d_const + tau_t * self._d_rt
         nw = self.nw
         f = self._objective(x, coefs, e)
         converged = False
-        wcon = gmat = None
+        wcon = gmat = dvec = None
         it = 0
         for it in range(1, max_iter + 1):
             eta = np.clip(x[:nw], -60.0, 60.0)
             mu = e * np.exp(eta)
-            hdata = qdata.copy()
-            hdata[self._pos_eta] += mu
-            if self.chol.factorize_data(hdata) >= 0:
+            dvec = tau_d + mu
+            if self.chol.factorize_data(self._schur_data(qdata, tau_d * mu / dvec, av, au)) >= 0:
                 raise ModelError(
                     "The posterior precision matrix of the space-time model lost positive definiteness "
                     f"(hyperparameters {np.round(theta, 3).tolist()}). Check for extreme counts or "
@@ -209,11 +256,18 @@ class _SpaceTimeLatent:
                 )
             grad = -self._qx(x, coefs)
             grad[:nw] += self.y - mu
-            sol = self.chol.solve(np.column_stack([grad, self._acon_t]))
-            d = sol[:, 0]
-            wcon = sol[:, 1:]
-            gmat = np.asarray(self.a_con @ wcon)
-            d = d - wcon @ np.linalg.solve(gmat, self.a_con @ d)
+            # block elimination of the diagonal eta block
+            r_eta = grad[:nw] / dvec
+            rhs = grad[nw:] + tau_d * self._mt_apply(r_eta, av, au)
+            sol = self.chol.solve(np.column_stack([rhs, self._aw_t]))
+            d = np.empty(self.m)
+            d[nw:] = sol[:, 0]
+            d[:nw] = r_eta + (tau_d / dvec) * self._m_apply(sol[:, 0], av, au)
+            wcon = np.empty((self.m, self.k_con))
+            wcon[nw:] = sol[:, 1:]
+            wcon[:nw] = (tau_d / dvec)[:, None] * self._m_apply(sol[:, 1:], av, au)
+            gmat = np.asarray(self.a_w @ wcon[nw:])
+            d = d - wcon @ np.linalg.solve(gmat, self.a_w @ d[nw:])
             step = 1.0
             while True:
                 f_new = self._objective(x + step * d, coefs, e)
@@ -231,7 +285,7 @@ class _SpaceTimeLatent:
                 f"(hyperparameters {np.round(theta, 3).tolist()}). Extreme relative risks are the usual "
                 "cause: check the counts and expected counts."
             )
-        return x, it, wcon, gmat
+        return x, it, wcon, gmat, dvec
 
     # ------------------------------------------------------------ Laplace
     def laplace(self, theta, x0=None, *, marginals=False, max_iter=60, tol=1e-7, tangent=False):
@@ -250,19 +304,24 @@ class _SpaceTimeLatent:
             # keep the area effects b (not the standardized v, u) from the warm start
             x[self.i_v] *= np.exp(theta_old[0] - th[0])
             x[self.i_u] *= np.exp(theta_old[0] - th[0])
-        x, it, wcon, gmat = self._newton(x, coefs, self.e, th, max_iter, tol)
+            # a missing count's eta sits at its prior mean at the mode (e.g. weeks held out for a forecast)
+            miss = ~self.obs
+            if miss.any():
+                x[: self.nw][miss] = self._mw(x, av, au)[miss]
+        x, it, wcon, gmat, dvec = self._newton(x, coefs, self.e, th, max_iter, tol)
         eta = np.clip(x[: self.nw], -60.0, 60.0)
         obs = self.obs
         loglik = float(np.sum(self.y[obs] * (self.log_e[obs] + eta[obs]) - self.e[obs] * np.exp(eta[obs])
                               - gammaln(self.y[obs] + 1.0)))
         quad = eng._dot(x, self._qx(x, coefs))
         ld_prior = self.ld_prior_const + self.nw * np.log(tau_d) + self.rank_t * np.log(tau_t)
-        ld_post = self.chol.logdet() + float(np.linalg.slogdet(gmat)[1]) - self.log_det_aat
+        ld_post = (float(np.sum(np.log(dvec))) + self.chol.logdet() + float(np.linalg.slogdet(gmat)[1])
+                   - self.log_det_aat)
         logml = loglik - 0.5 * quad + 0.5 * ld_prior - 0.5 * ld_post
         res = eng._LaplaceResult(theta=theta_in, x=x, log_marginal=logml, iterations=it)
         res.extra["tangent"] = None
         if marginals:
-            self._marginals(res, coefs, wcon, gmat)
+            self._marginals(res, coefs, wcon, gmat, dvec)
             # variational mean correction (as in _car_engine): E_i -> E_i exp(var_i / 2)
             xv = self._newton(x, coefs, self.e * np.exp(0.5 * res.var_eta), th, max_iter, tol)[0]
             res.x_mean = xv
@@ -277,31 +336,44 @@ class _SpaceTimeLatent:
         b[self.g.structured] += au * x[self.i_u]
         return b
 
-    def _marginals(self, res, coefs, wcon, gmat):
+    def _marginals(self, res, coefs, wcon, gmat, dvec):
         """Posterior variances of eta, of the district levels b_i and of beta_0 + g_t."""
-        av, au, _, _ = coefs
+        av, au, _, tau_d = coefs
         chol = self.chol
         chol.selected_inverse()
-        dg = chol.inverse_diagonal()
+        ds = chol.inverse_diagonal()
+        n, w, s = self.n, self.w, self._s
+
+        def inv(key):  # elements of S⁻¹ on one block of pairs
+            return chol.inverse_at(*self._blocks[key])
+
         ginv = np.linalg.inv(gmat)
 
         def corr(cmat):  # variance correction of linear combinations (rows of cmat @ wcon)
             return np.einsum("ij,jk,ik->i", cmat, ginv, cmat)
 
         nw = self.nw
-        var_eta = dg[:nw] - corr(wcon[:nw])
-        gs = self.g
-        s = gs.structured
-        var_b = av**2 * dg[self.i_v]
-        cw = av[:, None] * wcon[self.i_v]
-        var_b[s] += au**2 * dg[self.i_u] + 2.0 * av[s] * au * chol.inverse_at(self.i_v[s], self.i_u)
-        cw[s] += au * wcon[self.i_u]
+        ww = wcon[nw:]
+        # m_itᵀ S⁻¹ m_it with m_it = av_i e_v + au e_u + e_g + x1_i e_beta
+        s_vu = inv("vu")
+        var_b = av**2 * ds[self.jv]
+        var_b[s] += au**2 * ds[self.ju] + 2.0 * av[s] * au * s_vu
+        s_bb = np.zeros((self.p1, self.p1))
+        s_bb[self._iu_bb] = inv("bb")
+        s_bb = s_bb + np.triu(s_bb, 1).T
+        vb = av[:, None] * inv("vb").reshape(n, self.p1)
+        vb[s] += au * inv("ub").reshape(-1, self.p1)
+        per_i = var_b + 2.0 * np.sum(self.x1 * vb, axis=1) + np.einsum("ij,jk,ik->i", self.x1, s_bb, self.x1)
+        cross = av[:, None] * inv("vg").reshape(n, w)
+        cross[s] += au * inv("ug").reshape(-1, w)
+        s_gb = inv("gb").reshape(w, self.p1)
+        q = per_i[:, None] + ds[self.jg][None, :] + 2.0 * cross + 2.0 * self.x1 @ s_gb.T
+        var_eta = 1.0 / dvec + (tau_d / dvec) ** 2 * q.ravel() - corr(wcon[:nw])
+        cw = av[:, None] * ww[self.jv]
+        cw[s] += au * ww[self.ju]
         var_b = var_b - corr(cw)
-        b0 = self.i_beta[0]
-        var_tr = dg[self.i_g] + dg[b0] + 2.0 * chol.inverse_at(self.i_g, np.full(self.w, b0))
-        var_tr = var_tr - corr(wcon[self.i_g] + wcon[b0][None, :])
-        ib = self.i_beta
-        var_beta = dg[ib] - corr(wcon[ib])
+        var_tr = ds[self.jg] + s_bb[0, 0] + 2.0 * s_gb[:, 0] - corr(ww[self.jg] + ww[self.jb[0]][None, :])
+        var_beta = np.diag(s_bb) - corr(ww[self.jb])
         res.var_eta = np.maximum(var_eta, 1e-300)
         res.beta_var = np.maximum(var_beta, 1e-300)
         res.extra["var_level"] = np.maximum(var_b, 1e-300)
@@ -445,17 +517,17 @@ def fast_design(log_prior, latent, theta0, bounds, *, h=0.15, max_steps=12, tol=
                        edge=edge)
 
 
-def reweight_design(design, log_prior, latent):
+def reweight_design(design, log_prior, latent, starts=None):
     """Laplace fits of another data set (e.g. newest week missing) at the points of ``design``.
 
     The points are kept and the weights multiplied by the ratio of the new to the old
     posterior density at each point (importance reweighting of the integration design).
+    Each fit starts from the latent mode of ``starts`` (default: ``design``) at the same
+    point; the linear predictors of counts now missing start at their prior mean.
     """
     results, lps = [], []
-    warm = None
-    for th, res0 in zip(design.thetas, design.results):
-        res = latent.laplace(th, (res0.x, res0.theta) if warm is None else warm, marginals=True)
-        warm = (res.x, res.theta)
+    for th, res0 in zip(design.thetas, (starts or design).results):
+        res = latent.laplace(th, (res0.x, res0.theta), marginals=True)
         results.append(res)
         lps.append(res.log_marginal + float(log_prior(th)))
     lps = np.array(lps)

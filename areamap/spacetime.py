@@ -733,7 +733,7 @@ def fit_spacetime(
         else:
             y_f = y.copy()
             y_f[:, -1] = np.nan
-            design_f = reweight_design(design, log_prior, _latent(y_f, e, xs, gs, priors, trend))
+            design_f = reweight_design(design, log_prior, latent.with_data(y_f))
             designs["forecast"] = design_f
             muf = np.column_stack([r.mean_eta[last] for r in design_f.results])
             sdf = np.sqrt(np.column_stack([r.var_eta[last] for r in design_f.results]))
@@ -745,7 +745,7 @@ def fit_spacetime(
             elif k > 1:
                 y_k = y.copy()
                 y_k[:, -k:] = np.nan
-                design_k = reweight_design(design, log_prior, _latent(y_k, e, xs, gs, priors, trend))
+                design_k = reweight_design(design, log_prior, latent.with_data(y_k), starts=design_f)
                 designs[f"forecast_{k}"] = design_k
                 cells = np.arange(n)[:, None] * w + np.arange(w - k, w)[None, :]
                 mu_k = np.stack([r.mean_eta[cells] for r in design_k.results], axis=-1)
