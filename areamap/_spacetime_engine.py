@@ -113,34 +113,36 @@ class _SpaceTimeLatent:
         lp_rt = np.linalg.eigvalsh(rt)[rw_order:]
         self.ld_prior_const = (gs.log_pdet_scaled + float(np.sum(np.log(lp_rt)))
                                + float(np.sum(np.log(self.beta_prec))))
-        # entries of S = Q_w + Mᵀ diag(c) M, one block per pair of slots of a district-week
+        # T = Schur complement of the v block in S, on r = (u, g, beta); one block of entries per kind of pair
         s = gs.structured
         self._s = s
-        us = np.full(n, -1)
-        us[s] = ju
-        iu = np.repeat(ju, w)  # u of the structured districts' cells, row-major (district, week)
-        tu = np.tile(jg, ns)
+        m_r = ns + w + p1
+        self.m_r = m_r
+        ru, rg, rb = np.arange(ns), ns + np.arange(w), ns + w + np.arange(p1)
+        self.ru, self.rg, self.rb = ru, rg, rb
+        tri_g, tri_b = np.triu_indices(w), np.triu_indices(p1)
+        self._tri_g, self._tri_b = tri_g, tri_b
         blocks = {
-            "vv": (jv, jv), "vu": (jv[s], ju), "uu": (ju, ju),
-            "vg": (jv[self.row_i], jg[self.row_t]), "ug": (iu, tu), "gg": (jg, jg),
-            "vb": (np.repeat(jv, p1), np.tile(jb, n)), "ub": (np.repeat(ju, p1), np.tile(jb, ns)),
-            "gb": (np.repeat(jg, p1), np.tile(jb, w)),
-            "bb": (jb[np.triu_indices(p1)[0]], jb[np.triu_indices(p1)[1]]),
+            "uu": (ru, ru), "ug": (np.repeat(ru, w), np.tile(rg, ns)), "ub": (np.repeat(ru, p1), np.tile(rb, ns)),
+            "gg": (rg[tri_g[0]], rg[tri_g[1]]), "gb": (np.repeat(rg, p1), np.tile(rb, w)),
+            "bb": (rb[tri_b[0]], rb[tri_b[1]]),
         }
         rr = np.concatenate([b[0] for b in blocks.values()])
         cc = np.concatenate([b[1] for b in blocks.values()])
-        pattern = sp.csr_matrix((np.ones(rr.size), (rr, cc)), shape=(self.m_w, self.m_w))
-        pattern = pattern + pattern.T + self.qw_const + self.qw_rt + sp.eye(self.m_w)
-        # elimination order: v (coupled to no earlier column: eliminated in closed form by the
-        # factorization, without fill beyond the pattern), u in the graph's fill-reducing order, g, beta
-        uo = us[gs.order]
-        order = np.concatenate([jv, uo[uo >= 0], jg, jb]).astype(np.int64)
+        q_r = self.qw_const[n:, n:]
+        pattern = sp.csr_matrix((np.ones(rr.size), (rr, cc)), shape=(m_r, m_r))
+        pattern = pattern + pattern.T + q_r + self.qw_rt[n:, n:] + sp.eye(m_r)
+        # elimination order: u in the graph's fill-reducing order, then g, beta
+        uo = np.full(n, -1)
+        uo[s] = ru
+        uo = uo[gs.order]
+        order = np.concatenate([uo[uo >= 0], rg, rb]).astype(np.int64)
         self.chol = SparseCholesky(pattern, order)
         self._blocks = blocks
-        self._posw = {k: self.chol.positions(r, c) for k, (r, c) in blocks.items()}
-        self._d_const = self._scatter(self.qw_const)
-        self._d_rt = self._scatter(self.qw_rt)
-        self._iu_bb = np.triu_indices(p1)
+        self._pos = np.concatenate([self.chol.positions(r, c) for r, c in blocks.values()])
+        self._d_const = self._scatter(q_r)
+        self._d_rt = self._scatter(self.qw_rt[n:, n:])
+        self._fac = None
         self.stats = {}
 
     def _set_data(self, y, e):
@@ -177,13 +179,16 @@ class _SpaceTimeLatent:
         au = sigma * np.sqrt(phi)
         return av, au, np.exp(-2.0 * theta[2]), np.exp(-2.0 * theta[3])
 
+    # Products in the Newton loop use einsum, not BLAS: threaded BLAS calls on small operands spin
+    # their threads and slow the sparse factorization that follows when the machine is loaded.
     def _m_apply(self, wv, av, au):
         """M w for a w-block vector (m_w,) or matrix (m_w, k): shape (n W,) or (n W, k)."""
-        b = av.reshape((-1,) + (1,) * (wv.ndim - 1)) * wv[self.jv]
+        if wv.ndim == 2:
+            return np.column_stack([self._m_apply(col, av, au) for col in wv.T])
+        b = av * wv[self.jv]
         b[self._s] += au * wv[self.ju]
-        b = b + np.tensordot(self.x1, wv[self.jb], axes=1)
-        out = b[:, None] + wv[self.jg][None, :]
-        return out.reshape((self.nw,) + wv.shape[1:])
+        b += np.einsum("ij,j->i", self.x1, wv[self.jb])
+        return np.add.outer(b, wv[self.jg]).ravel()
 
     def _mt_apply(self, z, av, au):
         """Mᵀ z for z of shape (n W,): a w-block vector."""
@@ -193,7 +198,7 @@ class _SpaceTimeLatent:
         out[self.jv] = av * zn
         out[self.ju] = au * zn[self._s]
         out[self.jg] = zm.sum(axis=0)
-        out[self.jb] = self.x1.T @ zn
+        out[self.jb] = np.einsum("ij,i->j", self.x1, zn)
         return out
 
     def _mw(self, x, av, au):
@@ -209,28 +214,56 @@ class _SpaceTimeLatent:
         out[:nw] = r
         xw = x[nw:]
         ow = self.qw_const @ xw - self._mt_apply(r, av, au)
-        ow[self.jg] += tau_t * (self._rt @ xw[self.jg])
+        ow[self.jg] += tau_t * np.einsum("ts,s->t", self._rt, xw[self.jg])
         out[nw:] = ow
         return out
 
-    def _schur_data(self, qdata, c, av, au):
-        """Values of S = Q_w + Mᵀ diag(c) M on the analysed pattern."""
-        s, p = self._s, self._posw
+    def _t_data(self, qdata, c, av, au):
+        """Values of T = S_rr − S_rv S_vv⁻¹ S_vr on the analysed pattern, S = Q_w + Mᵀ diag(c) M.
+
+        S_vv = diag(a), a_i = 1 + a_v,i² C_i with C_i = Σ_t c_it; eliminating v leaves the entries of
+        Mᵀ diag(c) M on r = (u, g, beta) with c_it replaced by c_it / a_i, minus
+        Σ_i (a_v,i² / a_i) c_it c_is on the (g_t, g_s) block.
+        """
+        s = self._s
         cm = c.reshape(self.n, self.w)
         cn = cm.sum(axis=1)
-        xc = self.x1 * cn[:, None]
+        a = 1.0 + av**2 * cn
+        cr = cm / a[:, None]
+        cna = cn / a
+        xa = self.x1 * cna[:, None]
+        gg = np.diag(cm.sum(axis=0)) - np.einsum("it,is->ts", cm * (av**2 / a)[:, None], cm)
+        vals = np.concatenate([au**2 * cna[s], (au * cr[s]).ravel(), (au * xa[s]).ravel(), gg[self._tri_g],
+                               np.einsum("it,ij->tj", cr, self.x1).ravel(),
+                               np.einsum("ij,ik->jk", self.x1, xa)[self._tri_b]])
         data = qdata.copy()
-        data[p["vv"]] += av**2 * cn
-        data[p["vu"]] += av[s] * au * cn[s]
-        data[p["uu"]] += au**2 * cn[s]
-        data[p["vg"]] += (av[:, None] * cm).ravel()
-        data[p["ug"]] += (au * cm[s]).ravel()
-        data[p["gg"]] += cm.sum(axis=0)
-        data[p["vb"]] += (av[:, None] * xc).ravel()
-        data[p["ub"]] += (au * xc[s]).ravel()
-        data[p["gb"]] += (cm.T @ self.x1).ravel()
-        data[p["bb"]] += (self.x1.T @ xc)[self._iu_bb]
+        data[self._pos] += vals
+        self._fac = (a, cm, cn)
         return data
+
+    def _b_apply(self, zr, av, au):
+        """S_vr z for z on r (shape (m_r, k)): shape (n, k)."""
+        a, cm, cn = self._fac
+        zu = np.zeros((self.n, zr.shape[1]))
+        zu[self._s] = au * zr[self.ru]
+        return av[:, None] * (cn[:, None] * (zu + np.einsum("ij,jk->ik", self.x1, zr[self.rb]))
+                              + np.einsum("it,tk->ik", cm, zr[self.rg]))
+
+    def _bt_apply(self, yv, av, au):
+        """S_rv y for y on v (shape (n, k)): shape (m_r, k)."""
+        a, cm, cn = self._fac
+        ay = av[:, None] * yv
+        acy = cn[:, None] * ay
+        return np.concatenate([au * acy[self._s], np.einsum("it,ik->tk", cm, ay),
+                               np.einsum("ij,ik->jk", self.x1, acy)])
+
+    def _solve_w(self, f, av, au):
+        """S⁻¹ f for f on w = (v, r), shape (m_w, k), by block elimination of v."""
+        a = self._fac[0]
+        n = self.n
+        fv = f[:n] / a[:, None]
+        zr = self.chol.solve(f[n:] - self._bt_apply(fv, av, au))
+        return np.concatenate([fv - self._b_apply(zr, av, au) / a[:, None], zr])
 
     def _objective(self, x, coefs, e):
         eta = np.clip(x[: self.nw], -60.0, 60.0)
@@ -248,7 +281,7 @@ class _SpaceTimeLatent:
             eta = np.clip(x[:nw], -60.0, 60.0)
             mu = e * np.exp(eta)
             dvec = tau_d + mu
-            if self.chol.factorize_data(self._schur_data(qdata, tau_d * mu / dvec, av, au)) >= 0:
+            if self.chol.factorize_data(self._t_data(qdata, tau_d * mu / dvec, av, au)) >= 0:
                 raise ModelError(
                     "The posterior precision matrix of the space-time model lost positive definiteness "
                     f"(hyperparameters {np.round(theta, 3).tolist()}). Check for extreme counts or "
@@ -259,7 +292,7 @@ class _SpaceTimeLatent:
             # block elimination of the diagonal eta block
             r_eta = grad[:nw] / dvec
             rhs = grad[nw:] + tau_d * self._mt_apply(r_eta, av, au)
-            sol = self.chol.solve(np.column_stack([rhs, self._aw_t]))
+            sol = self._solve_w(np.column_stack([rhs, self._aw_t]), av, au)
             d = np.empty(self.m)
             d[nw:] = sol[:, 0]
             d[:nw] = r_eta + (tau_d / dvec) * self._m_apply(sol[:, 0], av, au)
@@ -267,7 +300,7 @@ class _SpaceTimeLatent:
             wcon[nw:] = sol[:, 1:]
             wcon[:nw] = (tau_d / dvec)[:, None] * self._m_apply(sol[:, 1:], av, au)
             gmat = np.asarray(self.a_w @ wcon[nw:])
-            d = d - wcon @ np.linalg.solve(gmat, self.a_w @ d[nw:])
+            d = d - np.einsum("ik,k->i", wcon, np.linalg.solve(gmat, self.a_w @ d[nw:]))
             step = 1.0
             while True:
                 f_new = self._objective(x + step * d, coefs, e)
@@ -315,7 +348,8 @@ class _SpaceTimeLatent:
                               - gammaln(self.y[obs] + 1.0)))
         quad = eng._dot(x, self._qx(x, coefs))
         ld_prior = self.ld_prior_const + self.nw * np.log(tau_d) + self.rank_t * np.log(tau_t)
-        ld_post = (float(np.sum(np.log(dvec))) + self.chol.logdet() + float(np.linalg.slogdet(gmat)[1])
+        ld_post = (float(np.sum(np.log(dvec))) + float(np.sum(np.log(self._fac[0]))) + self.chol.logdet()
+                   + float(np.linalg.slogdet(gmat)[1])
                    - self.log_det_aat)
         logml = loglik - 0.5 * quad + 0.5 * ld_prior - 0.5 * ld_post
         res = eng._LaplaceResult(theta=theta_in, x=x, log_marginal=logml, iterations=it)
@@ -337,16 +371,45 @@ class _SpaceTimeLatent:
         return b
 
     def _marginals(self, res, coefs, wcon, gmat, dvec):
-        """Posterior variances of eta, of the district levels b_i and of beta_0 + g_t."""
+        """Posterior variances of eta, of the district levels b_i and of beta_0 + g_t.
+
+        From the selected inverse Σ_r = T⁻¹ on r = (u, g, beta): with S_vr's row i equal to
+        a_v,i k_iᵀ, Cov(v_i, ·) = −a_v,i (Σ_r k_i)ᵀ / a_i and Var(v_i) = 1/a_i + a_v,i² k_iᵀ Σ_r k_i / a_i²,
+        where k_i has a_u C_i on u_i, c_it on g_t and C_i x_ij on beta_j.
+        """
         av, au, _, tau_d = coefs
         chol = self.chol
         chol.selected_inverse()
-        ds = chol.inverse_diagonal()
-        n, w, s = self.n, self.w, self._s
+        a, cm, cn = self._fac
+        n, w, p1, s = self.n, self.w, self.p1, self._s
 
-        def inv(key):  # elements of S⁻¹ on one block of pairs
+        def inv(key):  # elements of T⁻¹ on one block of pairs
             return chol.inverse_at(*self._blocks[key])
 
+        s_uu = inv("uu")
+        s_ug = inv("ug").reshape(-1, w)
+        s_ub = inv("ub").reshape(-1, p1)
+        s_gg = np.zeros((w, w))
+        s_gg[self._tri_g] = inv("gg")
+        s_gg = s_gg + np.triu(s_gg, 1).T
+        s_gb = inv("gb").reshape(w, p1)
+        s_bb = np.zeros((p1, p1))
+        s_bb[self._tri_b] = inv("bb")
+        s_bb = s_bb + np.triu(s_bb, 1).T
+        # P_i = Σ_r k_i on the entries u_i, g_t, beta_j (without the factor a_v,i)
+        xc = self.x1 * cn[:, None]
+        p_g = np.einsum("is,st->it", cm, s_gg) + np.einsum("ij,tj->it", xc, s_gb)
+        p_b = np.einsum("it,tj->ij", cm, s_gb) + np.einsum("ik,kj->ij", xc, s_bb)
+        p_u = np.zeros(n)
+        p_u[s] = au * cn[s] * s_uu + np.sum(cm[s] * s_ug, axis=1) + np.sum(xc[s] * s_ub, axis=1)
+        p_g[s] += (au * cn[s])[:, None] * s_ug
+        p_b[s] += (au * cn[s])[:, None] * s_ub
+        kpk = au * cn * p_u + np.sum(cm * p_g, axis=1) + np.sum(xc * p_b, axis=1)
+        s_vv = 1.0 / a + av**2 * kpk / a**2
+        f = -av / a
+        s_vu = (f * p_u)[s]
+        s_vg = f[:, None] * p_g
+        s_vb = f[:, None] * p_b
         ginv = np.linalg.inv(gmat)
 
         def corr(cmat):  # variance correction of linear combinations (rows of cmat @ wcon)
@@ -354,25 +417,20 @@ class _SpaceTimeLatent:
 
         nw = self.nw
         ww = wcon[nw:]
-        # m_itᵀ S⁻¹ m_it with m_it = av_i e_v + au e_u + e_g + x1_i e_beta
-        s_vu = inv("vu")
-        var_b = av**2 * ds[self.jv]
-        var_b[s] += au**2 * ds[self.ju] + 2.0 * av[s] * au * s_vu
-        s_bb = np.zeros((self.p1, self.p1))
-        s_bb[self._iu_bb] = inv("bb")
-        s_bb = s_bb + np.triu(s_bb, 1).T
-        vb = av[:, None] * inv("vb").reshape(n, self.p1)
-        vb[s] += au * inv("ub").reshape(-1, self.p1)
+        # m_itᵀ S⁻¹ m_it with m_it = a_v,i e_v + a_u e_u + e_g + x1_i e_beta
+        var_b = av**2 * s_vv
+        var_b[s] += au**2 * s_uu + 2.0 * av[s] * au * s_vu
+        vb = av[:, None] * s_vb
+        vb[s] += au * s_ub
         per_i = var_b + 2.0 * np.sum(self.x1 * vb, axis=1) + np.einsum("ij,jk,ik->i", self.x1, s_bb, self.x1)
-        cross = av[:, None] * inv("vg").reshape(n, w)
-        cross[s] += au * inv("ug").reshape(-1, w)
-        s_gb = inv("gb").reshape(w, self.p1)
-        q = per_i[:, None] + ds[self.jg][None, :] + 2.0 * cross + 2.0 * self.x1 @ s_gb.T
+        cross = av[:, None] * s_vg
+        cross[s] += au * s_ug
+        q = per_i[:, None] + np.diag(s_gg)[None, :] + 2.0 * cross + 2.0 * np.einsum("ij,tj->it", self.x1, s_gb)
         var_eta = 1.0 / dvec + (tau_d / dvec) ** 2 * q.ravel() - corr(wcon[:nw])
         cw = av[:, None] * ww[self.jv]
         cw[s] += au * ww[self.ju]
         var_b = var_b - corr(cw)
-        var_tr = ds[self.jg] + s_bb[0, 0] + 2.0 * s_gb[:, 0] - corr(ww[self.jg] + ww[self.jb[0]][None, :])
+        var_tr = np.diag(s_gg) + s_bb[0, 0] + 2.0 * s_gb[:, 0] - corr(ww[self.jg] + ww[self.jb[0]][None, :])
         var_beta = np.diag(s_bb) - corr(ww[self.jb])
         res.var_eta = np.maximum(var_eta, 1e-300)
         res.beta_var = np.maximum(var_beta, 1e-300)
