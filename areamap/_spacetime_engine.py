@@ -18,7 +18,9 @@ The model reuses the graph constants (:class:`_car_engine._GraphStructure`: scal
 PC prior of phi, ordering), the sparse Cholesky factorization of ``_sparse`` and the
 hyperparameter integration of ``_car_engine``; it only supplies its own latent field
 (prior precision, constraints, Newton iterations, marginals) through the same
-``laplace`` interface as ``_car_engine._LatentModel``.
+``laplace`` interface as ``_car_engine._LatentModel``. The linear predictors and the
+unstructured district effects are eliminated in closed form (their Hessian blocks are
+diagonal), so the sparse factorization only sees (u, g, beta).
 """
 
 from __future__ import annotations
@@ -58,11 +60,13 @@ class _SpaceTimeLatent:
     The Hessian of the negative log posterior is H = [[D, −τ_d M], [−τ_d Mᵀ, Q_w + τ_d MᵀM]]
     with D = diag(τ_d + μ_it) on the linear predictors (μ_it = E_it exp(eta_it), 0 where the count
     is missing), w = (v, u, g, beta) and M the map w ↦ prior mean of eta. D is eliminated in
-    closed form: only the Schur complement S = Q_w + Mᵀ diag(c) M, c_it = τ_d μ_it / (τ_d + μ_it),
-    of size n + n_structured + W + p + 1 is factorized (once per Newton step), and its entries are
-    summed directly from the per-district and per-week sums of c. log det H = Σ log D + log det S;
-    Var(eta_it) = 1/D_it + (τ_d/D_it)² m_itᵀ S⁻¹ m_it, read from the selected inverse of S
-    (Rue & Held 2005, section 2.3; the block elimination is the usual Schur-complement identity).
+    closed form, leaving S = Q_w + Mᵀ diag(c) M with c_it = τ_d μ_it / (τ_d + μ_it); the v block
+    of S is diagonal too (a_i = 1 + a_v,i² Σ_t c_it) and is eliminated as well. Only
+    T = S_rr − S_rv diag(a)⁻¹ S_vr on r = (u, g, beta), of size n_structured + W + p + 1, is
+    factorized (once per Newton step); its entries are summed directly from per-district and
+    per-week sums of c. log det H = Σ log D + Σ log a + log det T. Variances come from the
+    selected inverse of T (Rue & Held 2005, section 2.3) and the block-inverse identities of the
+    two eliminations (see :meth:`_marginals`).
     """
 
     def __init__(self, y, e, xcov, graph: eng._GraphStructure, *, rw_order=1, intercept_sd=5.0,

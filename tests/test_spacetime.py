@@ -88,38 +88,49 @@ def _dense_laplace(latent, res):
     return cov, logml
 
 
-@pytest.mark.parametrize("covariate", [False, True])
-def test_engine_marginals_match_dense_linear_algebra(covariate):
+@pytest.mark.parametrize("covariate, trend, edges", [(False, "rw1", True), (True, "rw1", True),
+                                                     (True, "rw2", True), (False, "rw1", False)])
+def test_engine_marginals_match_dense_linear_algebra(covariate, trend, edges):
     # the engine eliminates the linear predictors and the unstructured effects in closed form and reads
     # variances from a selected inverse; here everything is recomputed with dense matrices
     from areamap import _car_engine as eng
     from areamap.spacetime import _latent
 
-    g = AreaGraph.from_edges([f"d{i}" for i in range(7)],
-                             [(f"d{i}", f"d{i + 1}") for i in range(5)])  # a path of 6 and an island
+    ids = [f"d{i}" for i in range(7)]
+    # a path of 6 and an island; without edges every district is an island (phi drops out)
+    g = AreaGraph.from_edges(ids, [(ids[i], ids[i + 1]) for i in range(5)] if edges else [])
     rng = np.random.default_rng(3)
     e = rng.uniform(1.0, 5.0, (7, 5))
     y = rng.poisson(e * 1.2).astype(float)
     y[2, 4] = np.nan  # one missing count
     xs = rng.normal(size=(7, 1)) if covariate else np.zeros((7, 0))
     gs = eng._GraphStructure(g.adjacency)
-    latent = _latent(y, e, xs, gs, SpaceTimePriors(), "rw1")
-    theta = np.array([-0.7, 0.4, -1.1, -1.3])
-    res = latent.laplace(theta, marginals=True)
-    cov, logml = _dense_laplace(latent, res)
-    av, au, _, _ = latent.coefficients(theta)
-    # the engine's Hessian is that of the last Newton iterate (converged to a relative step of 1e-7)
-    assert_allclose(res.log_marginal, logml, rtol=0, atol=1e-6)
-    assert_allclose(res.var_eta, np.diag(cov)[: latent.nw], rtol=1e-6)
-    lev = np.zeros((7, latent.m))
-    lev[np.arange(7), latent.i_v] = av
-    lev[gs.structured, latent.i_u] = au
-    assert_allclose(res.extra["var_level"], np.einsum("ij,jk,ik->i", lev, cov, lev), rtol=1e-6)
-    trend = np.zeros((5, latent.m))
-    trend[np.arange(5), latent.i_g] = 1.0
-    trend[:, latent.i_beta[0]] = 1.0
-    assert_allclose(res.extra["var_trend"], np.einsum("ij,jk,ik->i", trend, cov, trend), rtol=1e-6)
-    assert_allclose(res.beta_var, np.diag(cov)[latent.i_beta], rtol=1e-6)
+    latent = _latent(y, e, xs, gs, SpaceTimePriors(), trend)
+    thetas = [np.array([-0.7, 0.4, -1.1, -1.3]), np.array([-0.2, -0.5, -0.6, -0.9])]
+    if not edges:
+        thetas = [np.delete(t, 1) for t in thetas]
+    got, want = [], []
+    for theta in thetas:
+        res = latent.laplace(theta, marginals=True)
+        cov, logml = _dense_laplace(latent, res)
+        got.append(res.log_marginal)
+        want.append(logml)
+        av, au, _, _ = latent.coefficients(latent.full_theta(theta))
+        # the engine's Hessian is that of the last Newton iterate (converged to a relative step of 1e-7)
+        assert_allclose(res.var_eta, np.diag(cov)[: latent.nw], rtol=1e-6)
+        lev = np.zeros((7, latent.m))
+        lev[np.arange(7), latent.i_v] = av
+        lev[gs.structured, latent.i_u] = au
+        assert_allclose(res.extra["var_level"], np.einsum("ij,jk,ik->i", lev, cov, lev), rtol=1e-6)
+        trend_rows = np.zeros((5, latent.m))
+        trend_rows[np.arange(5), latent.i_g] = 1.0
+        trend_rows[:, latent.i_beta[0]] = 1.0
+        assert_allclose(res.extra["var_trend"], np.einsum("ij,jk,ik->i", trend_rows, cov, trend_rows), rtol=1e-6)
+        assert_allclose(res.beta_var, np.diag(cov)[latent.i_beta], rtol=1e-6)
+    if trend == "rw1":
+        assert_allclose(got, want, rtol=0, atol=1e-6)
+    else:  # the RW2 slope prior adds a constant to the dense prior determinant: compare differences
+        assert_allclose(got[0] - got[1], want[0] - want[1], rtol=0, atol=1e-6)
 
 
 def test_refit_with_missing_weeks_matches_a_fresh_model():
