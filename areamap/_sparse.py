@@ -657,8 +657,8 @@ def _selinv_workspace(starts, rptr):  # pragma: no cover - compiled
 @nb.njit(cache=True)
 def _takahashi_super(starts, rptr, rows, off, snode, lb):  # pragma: no cover - compiled
     """Elements of (L Lᵀ)⁻¹ on the supernodal blocks of L (same layout as ``lb``), supernodes in
-    decreasing order; see :func:`_takahashi_super_groups` for the recursions."""
-    sb = np.zeros(lb.size)
+    decreasing order; see :func:`_takahashi_super_groups` for the recursions. Overwrites ``lb``."""
+    sb = lb  # in place: a supernode reads its own block of L before writing Σ over it
     ws = _selinv_workspace(starts, rptr)
     for k in range(starts.size - 2, -1, -1):
         _selinv_node(k, starts, rptr, rows, off, snode, lb, sb, ws)
@@ -678,9 +678,10 @@ def _takahashi_super_groups(starts, rptr, rows, off, snode, lb, top, glo, ghi, g
     The supernodes in ``top`` (ancestors of all the others, in decreasing order) come first;
     then the groups of disjoint subtrees (supernode ranges glo[t]:ghi[t] for gptr[g] <= t <
     gptr[g + 1]) run in parallel. Every supernode does the same arithmetic whatever the
-    schedule, so results do not depend on the number of threads.
+    schedule, so results do not depend on the number of threads. Overwrites ``lb`` (each supernode
+    reads its own block of L before writing Σ over it, and later only blocks holding Σ).
     """
-    sb = np.zeros(lb.size)
+    sb = lb
     ws = _selinv_workspace(starts, rptr)
     for t in range(top.size):
         _selinv_node(top[t], starts, rptr, rows, off, snode, lb, sb, ws)
