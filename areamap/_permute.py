@@ -136,7 +136,7 @@ def permutation_counts(state, n, g_c, g_m, g_skip, focal, v, centre, threshold, 
     area's position t + j is written to ``dup`` (in increasing order; the caller redraws it),
     else ``count[focal]`` gains 1 when |sum of v over the shifted indices - centre| >= threshold.
     The sum runs over the slots in order a = 0, 1, ... (the floating-point order of the numpy
-    path). A group's draws go to ``buf`` (int32, at least max g_c * g_m: a few MB, so they stay
+    path). ``focal`` is uint32. A group's draws go to ``buf`` (uint32, at least max g_c * g_m: a few MB, so they stay
     in cache) and are then read in runs of ``_TILE`` consecutive areas. Returns the number of
     entries written to ``dup``.
     """
@@ -152,24 +152,24 @@ def permutation_counts(state, n, g_c, g_m, g_skip, focal, v, centre, threshold, 
         m = g_m[g]
         for q in range(c * m):
             d, s_hi, s_lo, has, spare = _bounded(excl, reject_below, s_hi, s_lo, i_hi, i_lo, has, spare)
-            buf[q] = np.int32(d)
+            buf[q] = np.uint32(d)
         if g_skip[g]:
             t += m
             continue
-        tmp = np.empty(c, np.int32)
+        tmp = np.empty(c, np.uint32)
         for j0 in range(0, m, _TILE):
             w = min(m - j0, _TILE)
             f = focal[t + j0 : t + j0 + w]
             first = buf[j0 : j0 + w]
-            for j in range(w):
+            for j in range(w):  # unsigned indices: no negative-index wraparound in the gathers
                 d = first[j]
-                s[j] = v[d + (d >= f[j])]
+                s[j] = v[np.uint64(d + np.uint32(d >= f[j]))]
                 bad[j] = 0
             for a in range(1, c):
                 cur = buf[a * m + j0 : a * m + j0 + w]
                 for j in range(w):
                     d = cur[j]
-                    s[j] += v[d + (d >= f[j])]
+                    s[j] += v[np.uint64(d + np.uint32(d >= f[j]))]
             if c <= _PAIRWISE_MAX:
                 for a in range(1, c):
                     cur = buf[a * m + j0 : a * m + j0 + w]

@@ -956,11 +956,11 @@ def _neighbour_sum_pvalues(
     g_m = np.array([pos.size for _, pos, _ in groups], dtype=np.int64)
     g_skip = np.array(floyd, dtype=np.bool_)
     g_start = np.concatenate([[0], np.cumsum(g_m)]).astype(np.int64)
-    focal = order.astype(np.int32)
+    focal = order.astype(np.uint32)
     floyd_slots = sum(c * pos.size for (c, pos, _), f in zip(groups, floyd) if f)
     if block_size is None:
-        # per permutation of a block: a flag per tested area, the Floyd groups' indices
-        block_size = max(1, min(permutations, _BLOCK_BYTES // (order.size + 16 * floyd_slots)))
+        # per permutation of a block: the Floyd groups' indices (rejected areas are few)
+        block_size = max(1, min(permutations, _BLOCK_BYTES // (16 * floyd_slots + 64)))
     root = _resolve_seed(seed)
     workers = max(1, min(len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else
                          (os.cpu_count() or 1), permutations))
@@ -970,7 +970,7 @@ def _neighbour_sum_pvalues(
     for _ in range(workers):
         cnt = np.zeros(n, dtype=np.int64)
         all_counts.append(cnt)
-        spaces.put((cnt, np.empty(int((g_c * g_m).max(initial=0)), np.int32),
+        spaces.put((cnt, np.empty(int((g_c * g_m).max(initial=0)), np.uint32),
                     np.empty(order.size, np.int64)))
     count = np.zeros(n, dtype=np.int64)
 
@@ -993,9 +993,11 @@ def _neighbour_sum_pvalues(
             stop = min(permutations, start + block_size)
             gens = _permutation_streams(root, start, stop)
             P = stop - start
-            dup = np.zeros((P, order.size), dtype=bool)
-            for r, rejected in enumerate(pool.map(run, gens)):
-                dup[r, rejected] = True
+            rejected = list(pool.map(run, gens))
+            # (permutation, tested position) of every rejected area: sorted by permutation,
+            # then by position (the order in which the redraws consume each stream)
+            rej_r = np.repeat(np.arange(P), [a.size for a in rejected])
+            rej_t = np.concatenate(rejected)
             for gi, (c, pos, _) in enumerate(groups):
                 if floyd[gi]:
                     view = np.empty((P, c, pos.size), dtype=np.int32)
@@ -1006,7 +1008,8 @@ def _neighbour_sum_pvalues(
                     extreme = np.abs(sums - centre[pos]) >= threshold[pos]
                     count[pos] += np.count_nonzero(extreme, axis=0)
                     continue
-                rs, cols = np.nonzero(dup[:, g_start[gi] : g_start[gi + 1]])  # sorted by permutation
+                in_group = (rej_t >= g_start[gi]) & (rej_t < g_start[gi + 1])
+                rs, cols = rej_r[in_group], rej_t[in_group] - g_start[gi]
                 if rs.size:
                     idx = _redraw_duplicates(rs, cols, c, pos, gens, n)
                     sums = v.take(idx[0])
