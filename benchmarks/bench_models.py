@@ -94,8 +94,10 @@ def _child(n: int, profile: bool = False) -> None:
     if profile:
         prof.disable()
         buf = io.StringIO()
-        pstats.Stats(prof, stream=buf).sort_stats("tottime").print_stats(14)
+        stats = pstats.Stats(prof, stream=buf)
+        stats.sort_stats("tottime").print_stats(14)
         print(buf.getvalue(), file=sys.stderr)
+        print(_breakdown(stats, t2 - t1), file=sys.stderr)
     peak_mb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
     d = fit._design
     print(json.dumps({"engine": str(Path(areamap.__file__).parent),
@@ -105,6 +107,38 @@ def _child(n: int, profile: bool = False) -> None:
         "sigma": float(fit.hyperparameters.loc["sigma", "mean"]),
         "phi": float(fit.hyperparameters.loc["phi", "mean"]),
     }))
+
+
+#: where a fit's time goes: (label, file suffix, function name, own time only?)
+_PARTS = [
+    ("numeric factorizations (CHOLMOD)", "~", "<built-in method cvxopt.cholmod.numeric>", True),
+    ("triangular solves (CHOLMOD)", "~", "<built-in method cvxopt.cholmod.solve>", True),
+    ("selected inversion (marginal variances)", "_sparse.py", "selected_inverse", False),
+    ("Schur complement of the closed-form block", "_sparse.py", "_schur_data", False),
+    ("Laplace evaluations, all (nested: includes the rows above)", "_car_engine.py", "laplace", False),
+    ("graph constants and PC prior of phi", "_car_engine.py", "__init__", False),
+    ("mixture quantiles of the relative risks", "_car_engine.py", "mixture_quantiles", False),
+    ("model criteria (DIC, WAIC, predictive mid-p)", "models.py", "_criteria", False),
+    ("hyperparameter marginals", "_car_engine.py", "hyper_marginals", False),
+]
+
+
+def _breakdown(stats, total: float) -> str:
+    """Share of the fit's wall time per part (cumulative times from cProfile; rows may nest)."""
+    from areamap import _car_engine
+
+    graph_init = _car_engine._GraphStructure.__init__.__code__.co_firstlineno
+    lines = [f"breakdown of {total:.2f} s (cProfile; profiling adds overhead):"]
+    for label, suffix, name, own in _PARTS:
+        sec, calls = 0.0, 0
+        for (path, _line, func), (_cc, nc, tt, ct, _callers) in stats.stats.items():
+            if func == name and (suffix == "~" and path == "~" or path.endswith(suffix)):
+                if name == "__init__" and _line != graph_init:
+                    continue  # only _GraphStructure.__init__
+                sec += tt if own else ct
+                calls += nc
+        lines.append(f"  {label:<60} {sec:8.2f} s {100 * sec / total:5.1f} %  ({calls} calls)")
+    return "\n".join(lines)
 
 
 def _run(args: list[str], pythonpath: str | None = None) -> subprocess.CompletedProcess:

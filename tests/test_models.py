@@ -586,6 +586,100 @@ def test_edge_of_design_is_detected(path3):
         eng.warn_edge("icar")
 
 
+
+# ========================================================= hyperparameter mode search
+def test_newton_search_quadratic_is_exact():
+    """On a concave quadratic the stencil gives the exact gradient and Hessian (central
+    differences are exact for quadratics: common practice), so one Newton step lands on the mode."""
+    a = np.array([[4.0, 1.0], [1.0, 2.0]])
+    m = np.array([0.7, -1.3])
+
+    def f(t):
+        return -0.5 * (t - m) @ a @ (t - m)
+
+    mode, f_mode, hess, it = eng._newton_search(f, np.zeros(2), [(-9.0, 9.0), (-9.0, 9.0)])
+    assert_allclose(mode, m, atol=1e-8)
+    assert_allclose(hess, a, rtol=1e-6)
+    assert it == 2  # one step, then the stencil at the mode confirms it
+    assert f_mode == pytest.approx(0.0, abs=1e-12)
+
+
+def test_newton_search_follows_a_flat_approach():
+    """f(s) = -B exp(-s) - C s (the shape of a log posterior in logit(phi) as phi -> 1, analytic:
+    mode at s* = log(B / C), curvature -C there). From s = 0 to s* = 5 plain Newton steps shrink
+    geometrically; step doubling must get there with few evaluations, to within 0.045 sd (predicted gain below 1e-3)."""
+    bb, cc = np.exp(5.0), 1.0
+    calls = []
+
+    def f(t):
+        calls.append(t.copy())
+        return float(-bb * np.exp(-t[0]) - cc * t[0])
+
+    mode, _, hess, _ = eng._newton_search(f, np.zeros(1), [(-9.0, 9.0)])
+    assert abs(mode[0] - 5.0) < 0.045  # sd at the mode is 1 / sqrt(C) = 1
+    assert_allclose(hess[0, 0], bb * np.exp(-mode[0]), rtol=1e-4)  # analytic curvature at that point
+    assert len(calls) < 40
+
+
+def test_newton_search_stops_at_a_bound():
+    """Mode outside the box: the search stops on the bound with that coordinate held fixed."""
+
+    def f(t):
+        return -0.5 * (t[0] - 12.0) ** 2 - 0.5 * (t[1] - 1.0) ** 2
+
+    mode, *_ = eng._newton_search(f, np.zeros(2), [(-9.0, 9.0), (-9.0, 9.0)])
+    assert mode[0] == 9.0
+    assert abs(mode[1] - 1.0) < 1e-3
+
+
+def test_quasi_newton_fallback_agrees(monkeypatch, grid5_queen):
+    """When the Newton search gives up (forced here), the L-BFGS-B fallback runs and the fit agrees
+    with the Newton path (both find the same mode; different Hessian steps move the design a little)."""
+    y, e, x = _simulated(grid5_queen, seed=3)
+    first = fit_car(y, e, grid5_queen, covariates=x)
+    monkeypatch.setattr(eng, "_newton_search", lambda *a, **k: None)
+    second = fit_car(y, e, grid5_queen, covariates=x)
+    assert first._design.n_evaluations < second._design.n_evaluations
+    assert_allclose(first._design.mode, second._design.mode, atol=0.02)
+    assert_allclose(first.rr_mean, second.rr_mean, rtol=2e-3)
+
+
+def test_mean_correction_by_chord_steps_matches_newton(grid5_queen):
+    """The variational mean correction reuses the factorization at the mode (chord iterations);
+    it must solve the same problem as full Newton iterations, to the Newton tolerance."""
+    y, e, x = _simulated(grid5_queen, seed=5)
+    gs = eng._GraphStructure(grid5_queen.adjacency)
+    lat = eng._LatentModel("bym2", y, e, x[:, None], gs, intercept_sd=5.0, coefficient_sd=5.0)
+    theta = np.array([np.log(0.4), 0.5])
+    res = lat.laplace(theta, marginals=True)
+    bmat = lat.design(theta)
+    bt = sp.csr_matrix(bmat.T)
+    shifted = e * np.exp(0.5 * res.var_eta)
+    newton = lat._newton(res.x, lat.q_prior, bmat, bt, shifted, theta, 60, 1e-12)[0]
+    assert_allclose(res.x_mean, newton, atol=1e-6)
+
+
+def test_mixture_quantiles_match_bisection(rng):
+    """Safeguarded Newton quantiles of normal mixtures vs plain bisection of the mixture CDF
+    (scipy.special.ndtr), including one- and two-humped mixtures."""
+    from scipy.special import ndtr
+
+    n, k = 300, 5
+    mu = rng.normal(0, 1, (n, k))
+    mu[:50, 0] += 6.0  # well separated components: two humps
+    sd = rng.uniform(0.05, 1.5, (n, k))
+    w = rng.dirichlet(np.ones(k))
+    probs = (0.025, 0.5, 0.975)
+    got = eng.mixture_quantiles(mu, sd, w, probs)
+    for q, p in zip(got, probs):
+        a = np.min(mu - 9 * sd, axis=1)
+        b = np.max(mu + 9 * sd, axis=1)
+        for _ in range(200):
+            mid = 0.5 * (a + b)
+            below = ndtr((mid[:, None] - mu) / sd) @ w < p
+            a, b = np.where(below, mid, a), np.where(below, b, mid)
+        assert_allclose(q, 0.5 * (a + b), atol=1e-10)
+
 # ========================================================= result object
 def test_result_object(grid5_queen):
     y, e, x = _simulated(grid5_queen, seed=4)
