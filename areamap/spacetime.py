@@ -486,12 +486,13 @@ def _mixture_summary(mu, sd, w, *, threshold=None):
     return out
 
 
-def _forecast(mu, sd, w, e_new, y_new):
+def _forecast(mu, sd, w, e_new, y_new, *, interval=True):
     """Predictive mean, 95% interval and upper-tail mid-p of Poisson(E exp(eta)), eta ~ mixture.
 
     mu, sd: (n, K) per-design-point means and SDs of eta; the mean and the mid-p use the
     full mixture (Gauss-Hermite over eta within each point); the interval uses one normal
-    matched to the mixture's mean and variance of eta (exact when one point dominates).
+    matched to the mixture's mean and variance of eta (exact when one point dominates);
+    ``interval=False`` skips it (NaN bounds).
     """
     n = mu.shape[0]
     log_e = np.log(e_new)
@@ -505,6 +506,8 @@ def _forecast(mu, sd, w, e_new, y_new):
         pmf = np.exp(yv[:, None] * np.log(lam) - lam - lgy[:, None])
         midp += w[k] * eng.mix(above + 0.5 * pmf, _GH_WEIGHTS)
     midp = np.where(np.isfinite(y_new), np.clip(midp, 0.0, 1.0), np.nan)
+    if not interval:
+        return mean, np.full(n, np.nan), np.full(n, np.nan), midp
     m1 = eng.mix(mu, w)
     s1 = np.sqrt(np.maximum(eng.mix(mu**2 + sd**2, w) - m1**2, 1e-300))
     lam = np.exp(log_e[:, None] + m1[:, None] + s1[:, None] * _GH_NODES[None, :])
@@ -733,7 +736,7 @@ def fit_spacetime(
         else:
             y_f = y.copy()
             y_f[:, -1] = np.nan
-            design_f = reweight_design(design, log_prior, _latent(y_f, e, xs, gs, priors, trend))
+            design_f = reweight_design(design, log_prior, latent.with_data(y_f))
             designs["forecast"] = design_f
             muf = np.column_stack([r.mean_eta[last] for r in design_f.results])
             sdf = np.sqrt(np.column_stack([r.var_eta[last] for r in design_f.results]))
@@ -745,7 +748,7 @@ def fit_spacetime(
             elif k > 1:
                 y_k = y.copy()
                 y_k[:, -k:] = np.nan
-                design_k = reweight_design(design, log_prior, _latent(y_k, e, xs, gs, priors, trend))
+                design_k = reweight_design(design, log_prior, latent.with_data(y_k), starts=design_f)
                 designs[f"forecast_{k}"] = design_k
                 cells = np.arange(n)[:, None] * w + np.arange(w - k, w)[None, :]
                 mu_k = np.stack([r.mean_eta[cells] for r in design_k.results], axis=-1)
@@ -753,7 +756,7 @@ def fit_spacetime(
                 var_d = np.array([np.exp(2.0 * latent.full_theta(r.theta)[3]) for r in design_k.results])
                 m_log, s_log = _window_moments(mu_k, var_k, var_d, e[:, -k:])
                 obs_k = np.where(np.isfinite(y[:, -k:]).all(axis=1), np.nansum(y[:, -k:], axis=1), np.nan)
-                window_midp = _forecast(m_log, s_log, design_k.weights, np.ones(n), obs_k)[3]
+                window_midp = _forecast(m_log, s_log, design_k.weights, np.ones(n), obs_k, interval=False)[3]
                 p_list.append(window_midp)
                 lengths.append(k)
             forecast_p, best = _bonferroni_windows(p_list)
