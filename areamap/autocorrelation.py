@@ -26,6 +26,7 @@ from __future__ import annotations
 import html
 import math
 import os
+import queue
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 
@@ -35,7 +36,7 @@ import scipy.sparse as sp
 from scipy import stats
 
 from ._params import check_choice, check_interval, check_positive_int
-from ._permute import CHUNK, block_counts, chunk_table
+from ._permute import pcg64_state, permutation_counts, set_pcg64_state
 from .errors import GraphError, InputError, ParameterError, format_examples
 from .graphs import AreaGraph
 
@@ -945,43 +946,61 @@ def _neighbour_sum_pvalues(
         c = int(ks[chunk[0]])
         groups.append((c, pos, offset))
         offset += c * pos.size
-    n_slots = offset
-    itype = np.int32 if n < 2**31 - 1 else np.int64
+    if n >= 2**31 - 1:  # pragma: no cover - far beyond any graph that fits in memory
+        raise InputError(f"local permutation tests support fewer than 2**31 - 1 areas; the graph has {n}.")
 
-    if block_size is None:
-        block_size = max(1, min(permutations, _BLOCK_BYTES // (16 * n_slots)))
-    root = _resolve_seed(seed)
-    count = np.zeros(n, dtype=np.int64)
-    # Group tables for the compiled kernel; groups with many neighbours relative to n use
-    # Floyd's algorithm instead of rejection (g_c = 0 there: handled below in numpy).
+    # Groups with many neighbours relative to n are sampled by Floyd's algorithm instead of
+    # rejection (in numpy, below); the compiled kernel draws and discards their main slots.
     floyd = [np.prod(1.0 - np.arange(c) / (n - 1)) < 0.5 for c, _, _ in groups]
-    g_c = np.array([0 if f else c for (c, _, _), f in zip(groups, floyd)], dtype=np.int64)
-    g_off = np.array([off for _, _, off in groups], dtype=np.int64)
+    g_c = np.array([c for c, _, _ in groups], dtype=np.int64)
     g_m = np.array([pos.size for _, pos, _ in groups], dtype=np.int64)
+    g_skip = np.array(floyd, dtype=np.bool_)
     g_start = np.concatenate([[0], np.cumsum(g_m)]).astype(np.int64)
-    chunks = chunk_table(g_m, CHUNK)
-    t_pos = order.astype(np.int64)
+    focal = order.astype(np.uint32)
+    floyd_slots = sum(c * pos.size for (c, pos, _), f in zip(groups, floyd) if f)
+    if block_size is None:
+        # per permutation of a block: the Floyd groups' indices (rejected areas are few)
+        block_size = max(1, min(permutations, _BLOCK_BYTES // (16 * floyd_slots + 64)))
+    root = _resolve_seed(seed)
     workers = max(1, min(len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else
-                         (os.cpu_count() or 1), block_size))
+                         (os.cpu_count() or 1), permutations))
+    # one set of work space per worker thread (each with its own counts, summed at the end)
+    spaces: queue.SimpleQueue = queue.SimpleQueue()
+    all_counts = []
+    for _ in range(workers):
+        cnt = np.zeros(n, dtype=np.int64)
+        all_counts.append(cnt)
+        spaces.put((cnt, np.empty(int((g_c * g_m).max(initial=0)), np.uint32),
+                    np.empty(order.size, np.int64)))
+    count = np.zeros(n, dtype=np.int64)
+
+    def run(gen):
+        # the permutation's main draws and counts, compiled (the GIL is released inside)
+        state = pcg64_state(gen.bit_generator)
+        space = spaces.get()
+        try:
+            cnt, buf, dup = space
+            n_dup = permutation_counts(state, n, g_c, g_m, g_skip, focal, v, centre, threshold,
+                                       cnt, buf, dup)
+            rejected = dup[:n_dup].copy()
+        finally:
+            spaces.put(space)
+        set_pcg64_state(gen.bit_generator, state)
+        return rejected
+
     with ThreadPoolExecutor(max_workers=workers) as pool:
         for start in range(0, permutations, block_size):
             stop = min(permutations, start + block_size)
             gens = _permutation_streams(root, start, stop)
             P = stop - start
-            draws = np.empty((P, n_slots), dtype=itype)
-
-            def fill(r, gens=gens, draws=draws):
-                # indices into the n - 1 other areas (shifted past the focal area later);
-                # numpy releases the GIL while filling, so streams are drawn in parallel
-                draws[r] = gens[r].integers(0, n - 1, size=n_slots, dtype=itype)
-
-            list(pool.map(fill, range(P)))
-            dup = np.zeros((P, order.size), dtype=bool)
-            block_counts(draws, chunks, g_c, g_off, g_m, g_start, t_pos, v, centre, threshold,
-                         count, dup)
-            for gi, (c, pos, off) in enumerate(groups):
+            rejected = list(pool.map(run, gens))
+            # (permutation, tested position) of every rejected area: sorted by permutation,
+            # then by position (the order in which the redraws consume each stream)
+            rej_r = np.repeat(np.arange(P), [a.size for a in rejected])
+            rej_t = np.concatenate(rejected)
+            for gi, (c, pos, _) in enumerate(groups):
                 if floyd[gi]:
-                    view = draws[:, off : off + c * pos.size].reshape(P, c, pos.size)
+                    view = np.empty((P, c, pos.size), dtype=np.int32)
                     _floyd_draws(view, pos, gens, n)
                     sums = v.take(view[:, 0, :])
                     for j in range(1, c):
@@ -989,7 +1008,8 @@ def _neighbour_sum_pvalues(
                     extreme = np.abs(sums - centre[pos]) >= threshold[pos]
                     count[pos] += np.count_nonzero(extreme, axis=0)
                     continue
-                rs, cols = np.nonzero(dup[:, g_start[gi] : g_start[gi + 1]])  # sorted by permutation
+                in_group = (rej_t >= g_start[gi]) & (rej_t < g_start[gi + 1])
+                rs, cols = rej_r[in_group], rej_t[in_group] - g_start[gi]
                 if rs.size:
                     idx = _redraw_duplicates(rs, cols, c, pos, gens, n)
                     sums = v.take(idx[0])
@@ -997,6 +1017,8 @@ def _neighbour_sum_pvalues(
                         sums += v.take(idx[j])
                     extreme = np.abs(sums - centre[pos[cols]]) >= threshold[pos[cols]]
                     np.add.at(count, pos[cols], extreme.astype(np.int64))
+    for cnt in all_counts:
+        count += cnt
     p = (count + 1.0) / (permutations + 1.0)
     p[k == 0] = np.nan
     return p

@@ -409,36 +409,127 @@ def test_local_p_values_for_a_seed_are_unchanged():
     np.testing.assert_array_equal(np.round(res.p_value * 200).astype(int), counts)
 
 
-@pytest.mark.parametrize("c", [1, 3, 30])
-def test_permutation_kernel_matches_direct_computation(c):
-    """The compiled block kernel against a direct numpy computation on the same draws: indices
-    shifted past the focal area, rows with a repeated index flagged (not counted), extreme neighbour
-    sums counted (exact integer agreement). c = 30 takes the sorting branch for repeated indices."""
-    from areamap._permute import block_counts, chunk_table
+@pytest.mark.parametrize("seed", range(12))
+def test_compiled_draws_reproduce_numpy_streams(seed):
+    """The compiled bounded integers against numpy itself (the reference library whose stream defines
+    the p-values): Generator.integers(0, high, dtype=uint32/int32) on PCG64 streams, long runs
+    over several consecutive calls of odd sizes (so the buffered 32-bit half carries over), bounds
+    from 2 to near 2**32 (high bounds make Lemire's rejection step frequent), states that start with
+    a buffered half, and the state handed back to numpy (which must continue identically)."""
+    from areamap._permute import bounded_draws, pcg64_state, set_pcg64_state
 
-    rng = np.random.default_rng(c)
-    n, m, P = (40 if c < 10 else 2000), 6, 50  # repeated indices in some rows, not all
-    pos = rng.choice(n, size=m, replace=False)
-    v = rng.normal(size=n)
-    centre = rng.normal(size=n)
-    threshold = np.abs(rng.normal(size=n)) * np.sqrt(c)
-    draws = rng.integers(0, n - 1, size=(P, c * m)).astype(np.int32)
+    ss = np.random.SeedSequence(seed)
+    ref = np.random.Generator(np.random.PCG64(np.random.SeedSequence(ss.entropy, spawn_key=(seed,))))
+    ref.integers(0, 3, size=seed % 3, dtype=np.uint32)  # start with or without a buffered half
+    mine = np.random.Generator(np.random.PCG64())
+    mine.bit_generator.state = ref.bit_generator.state
+    for high in (2, 3, 1000, 100_488, 2**31 - 2, 3 * 2**30 + 7, 2**32 - 1):
+        for size in (1, 2, 9_999 + seed, 100_000):
+            dtype = np.int32 if high < 2**31 else np.uint32
+            want = ref.integers(0, high, size=size, dtype=dtype)
+            state = pcg64_state(mine.bit_generator)
+            got = bounded_draws(state, high, size)
+            np.testing.assert_array_equal(got.astype(np.int64), want.astype(np.int64))
+            set_pcg64_state(mine.bit_generator, state)
+            assert mine.bit_generator.state == ref.bit_generator.state
+    # numpy continues from the handed-back state exactly as from its own
+    np.testing.assert_array_equal(mine.integers(0, 77, size=1001), ref.integers(0, 77, size=1001))
+
+
+def _reference_neighbour_sum_pvalues(v, graph, permutations, seed):
+    """Plain-numpy reference of the conditional-permutation p-values, one permutation at a time:
+    permutation r draws Generator.integers(0, n - 1, size=n_slots, dtype=int32) from the stream
+    spawned from (seed, r), areas grouped by ascending neighbour count with slots laid out
+    (count, areas); rows with a repeated index are redrawn from the same stream (rejection), groups
+    with many neighbours relative to n are sampled by Floyd's algorithm (Bentley & Floyd 1987).
+    Written independently of the compiled kernel; the definition the compiled path must reproduce."""
+    from areamap.autocorrelation import _TIE_RTOL
+
+    n = v.size
+    k = graph.neighbour_counts()
+    observed = graph.adjacency @ v
+    centre = k * (v.sum() - v) / (n - 1)
+    threshold = np.abs(observed - centre) - _TIE_RTOL * np.maximum(k, 1) * np.max(np.abs(v))
+    tested = np.flatnonzero(k > 0)
+    order = tested[np.argsort(k[tested], kind="stable")]
+    groups = [(int(c), order[k[order] == c]) for c in np.unique(k[order])]
+    n_slots = sum(c * pos.size for c, pos in groups)
     count = np.zeros(n, dtype=np.int64)
-    dup = np.zeros((P, m), dtype=bool)
-    g_m = np.array([m])
-    block_counts(draws, chunk_table(g_m, 4), np.array([c]), np.array([0]), g_m, np.array([0]),
-                 pos.astype(np.int64), v, centre, threshold, count, dup)  # chunks of 4 and 2 areas
-    view = draws.reshape(P, c, m).astype(np.int64)
-    shifted = view + (view >= pos[None, None, :])
-    want_dup = np.array([[len(set(view[r, :, j])) < c for j in range(m)] for r in range(P)])
-    sums = v[shifted].sum(axis=1)
-    extreme = (np.abs(sums - centre[pos]) >= threshold[pos]) & ~want_dup
-    np.testing.assert_array_equal(dup, want_dup)
-    want = np.zeros(n, dtype=np.int64)
-    want[pos] = extreme.sum(axis=0)
-    np.testing.assert_array_equal(count, want)
-    if c > 1:
-        assert want_dup.any() and not want_dup.all()
+    root = np.random.SeedSequence(seed)
+
+    def add_counts(idx, pos):
+        sums = v[idx[0]].copy()
+        for a in range(1, idx.shape[0]):
+            sums += v[idx[a]]
+        np.add.at(count, pos, (np.abs(sums - centre[pos]) >= threshold[pos]).astype(np.int64))
+
+    def repeated(idx):
+        s = np.sort(idx, axis=0)
+        return (s[1:] == s[:-1]).any(axis=0)
+
+    for r in range(permutations):
+        gen = np.random.Generator(np.random.PCG64(np.random.SeedSequence(root.entropy, spawn_key=(r,))))
+        draws = gen.integers(0, n - 1, size=n_slots, dtype=np.int32)
+        off = 0
+        for c, pos in groups:
+            m = pos.size
+            view = draws[off : off + c * m].reshape(c, m).astype(np.int64)
+            off += c * m
+            if np.prod(1.0 - np.arange(c) / (n - 1)) < 0.5:  # Floyd's algorithm
+                chosen = np.empty((c, m), dtype=np.int64)
+                for step, j in enumerate(range(n - 1 - c, n - 1)):
+                    t = gen.integers(0, j + 1, size=m, dtype=np.int32)
+                    taken = (chosen[:step] == t).any(axis=0)
+                    chosen[step] = np.where(taken, j, t)
+                add_counts(chosen + (chosen >= pos), pos)
+                continue
+            idx = view + (view >= pos)
+            bad = repeated(idx)
+            add_counts(idx[:, ~bad], pos[~bad])
+            todo = np.flatnonzero(bad)
+            while todo.size:  # redraw rejected rows, in area order, until their indices are distinct
+                new = gen.integers(0, n - 1, size=(c, todo.size), dtype=np.int32).astype(np.int64)
+                new += new >= pos[todo]
+                bad = repeated(new)
+                add_counts(new[:, ~bad], pos[todo[~bad]])
+                todo = todo[bad]
+    p = (count + 1.0) / (permutations + 1.0)
+    p[k == 0] = np.nan
+    return p
+
+
+def _hub_graph(n, hub_sizes, seed):
+    """A ring with chords plus hub areas linked to many others. With n = 1200, hubs of 26 and 30
+    neighbours take the sorting branch for repeated indices, hubs of 200 and 600 Floyd's algorithm."""
+    rng = np.random.default_rng(seed)
+    a = np.arange(n)
+    hubs = len(hub_sizes)
+    rows, cols = [a, a], [(a + 1) % n, (a + 7) % n]
+    for h, size in enumerate(hub_sizes):
+        others = rng.choice(np.arange(hubs, n), size=size, replace=False)
+        rows.append(np.full(others.size, h))
+        cols.append(others)
+    r, c = np.concatenate(rows), np.concatenate(cols)
+    adj = sp.csr_array((np.ones(2 * r.size), (np.r_[r, c], np.r_[c, r])), shape=(n, n))
+    adj.data[:] = 1.0
+    return AreaGraph.from_adjacency(np.arange(n), adj, kind="test")
+
+
+@pytest.mark.parametrize("graph_name", ["grid", "hubs", "island", "tiny"])
+@pytest.mark.parametrize("seed", [0, 7, 2024])
+def test_local_p_values_match_plain_numpy_reference(graph_name, seed, graph_with_island):
+    """Compiled draws and counts (any block size) give the p-values of the plain-numpy reference
+    above exactly, on graphs with one or many neighbour counts, hubs, an island and 4 areas."""
+    from areamap.autocorrelation import _neighbour_sum_pvalues
+
+    graph = {"grid": grid_graph(9, 11, queen=True), "hubs": _hub_graph(1200, [26, 30, 200, 600], seed),
+             "island": graph_with_island, "tiny": grid_graph(2, 2)}[graph_name]
+    v = np.random.default_rng(seed).normal(size=graph.n)
+    v -= v.mean()
+    want = _reference_neighbour_sum_pvalues(v, graph, 60, seed)
+    for block in (None, 7):
+        got = _neighbour_sum_pvalues(v, graph, 60, seed, block)
+        np.testing.assert_array_equal(got, want)
 
 
 @pytest.mark.parametrize("block", [1, 13])
