@@ -656,6 +656,7 @@ class _Design:
     log_evidence: float
     n_evaluations: int
     edge: bool
+    skipped: int = 0  # integration points left out because they lay beyond the bounds
 
 
 def integrate_hyperparameters(log_prior, latent: _LatentModel, theta0, bounds, *, dz=1.0, radius=3.0,
@@ -787,7 +788,7 @@ def integrate_hyperparameters(log_prior, latent: _LatentModel, theta0, bounds, *
         log_ev = float(lps.max() + np.log(np.sum(np.exp(lps - lps.max()) * vol)) + log_vol)
         return _Design(thetas=np.array(pts), log_post=lps, weights=w, results=res_list, mode=mode,
                        scales=smat, stretch=stretch, log_evidence=log_ev, n_evaluations=state["count"],
-                       edge=edge)
+                       edge=edge, skipped=len(skipped))
 
     steps = np.arange(-np.floor(radius / dz), np.floor(radius / dz) + 1) * dz
     mesh = np.array(np.meshgrid(*([steps] * d), indexing="ij")).reshape(d, -1).T

@@ -508,6 +508,13 @@ def _fit(ids, graph, y, e, xc, names, *, model, priors, threshold, _fixed_theta=
     if design.edge:
         eng.warn_edge(model)
         notes.append("Hyperparameter posterior reaches the edge of the integration design.")
+    if strategy == "gauss-hermite" and design.skipped:
+        notes.append(
+            f"{design.skipped} of {design.skipped + len(design.results)} integration points of the "
+            "hyperparameters lay beyond their bounds (typically phi within about 1e-4 of 1) and were "
+            "left out; the remaining points were reweighted, which narrows the spread of the "
+            "hyperparameters slightly."
+        )
     w = design.weights
     mu = np.column_stack([r.mean_eta for r in design.results])
     sd = np.sqrt(np.column_stack([r.var_eta for r in design.results]))

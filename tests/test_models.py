@@ -680,6 +680,30 @@ def test_mixture_quantiles_match_bisection(rng):
             a, b = np.where(below, mid, a), np.where(below, b, mid)
         assert_allclose(q, 0.5 * (a + b), atol=1e-10)
 
+
+def test_gauss_hermite_points_beyond_bounds_are_counted_and_noted(grid5_queen, monkeypatch):
+    """A log prior rising in logit(phi) puts the mode on the upper bound, so Gauss-Hermite points
+    beyond it are left out: the design counts them and fit_car says so in its notes."""
+    y, e, x = _simulated(grid5_queen, seed=2)
+    gs = eng._GraphStructure(grid5_queen.adjacency)
+    lat = eng._LatentModel("bym2", y, e, np.zeros((y.size, 0)), gs, intercept_sd=5.0, coefficient_sd=5.0)
+    bounds = [(-5.0, np.log(50.0)), (-9.0, 9.0)]
+    pushed = eng.integrate_hyperparameters(lambda t: 2.0 * t[1], lat, np.array([-1.0, 0.0]), bounds,
+                                           strategy="gauss-hermite")
+    assert pushed.skipped > 0
+    assert pushed.skipped + len(pushed.results) == 9
+    # priors that keep both hyperparameters well inside the bounds: nothing left out
+    plain = eng.integrate_hyperparameters(lambda t: -0.5 * ((t[0] + 1.0) / 0.3) ** 2 - 0.5 * t[1] ** 2, lat, np.array([-1.0, 0.0]), bounds,
+                                          strategy="gauss-hermite")
+    assert plain.skipped == 0
+    # the note in fit_car (gauss-hermite strategy forced by a zero grid limit, design from above)
+    import areamap.models as models
+
+    monkeypatch.setattr(models, "GRID_LIMIT", 0)
+    monkeypatch.setattr(eng, "integrate_hyperparameters", lambda *a, **k: pushed)
+    fit = fit_car(y, e, grid5_queen)
+    assert any(f"{pushed.skipped} of 9 integration points" in note for note in fit.notes)
+
 # ========================================================= result object
 def test_result_object(grid5_queen):
     y, e, x = _simulated(grid5_queen, seed=4)
