@@ -910,7 +910,6 @@ def _subtree_groups(sparent: np.ndarray, work: np.ndarray, parts: int):
     largest-first assignment of the subtrees balances the groups within 5 % (or the top holds
     half of the work). Returns (top in decreasing order, range starts, range ends, group pointers).
     """
-    ns = sparent.size
     wsub, count = _subtree_sums(sparent, work)
     total = float(work.sum())
     cands = [int(k) for k in np.flatnonzero(sparent < 0)]
