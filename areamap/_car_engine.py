@@ -55,6 +55,24 @@ def mix(mat, w):
     return np.einsum("ik,k->i", mat, w)
 
 
+def damped_step(objective, x, d, f, tol):
+    """One damped Newton step shared by the latent-field iterations of both engines.
+
+    ``objective(x)`` returns a tuple whose first entry is the concave objective. The step x + s d is
+    halved from s = 1 until the objective does not fall (beyond a relative 1e-10) or s < 1e-6.
+    Returns (new x, the objective's tuple there, converged), where converged means
+    max|s d| < tol (1 + max|x|).
+    """
+    step = 1.0
+    while True:
+        value = objective(x + step * d)
+        if value[0] >= f - 1e-10 * (1.0 + abs(f)) or step < 1e-6:
+            break
+        step *= 0.5
+    x = x + step * d
+    return x, value, bool(np.max(np.abs(step * d)) < tol * (1.0 + np.max(np.abs(x))))
+
+
 def _logit(p):
     return np.log(p) - np.log1p(-p)
 
@@ -449,16 +467,8 @@ class _LatentModel:
                 d = d - np.einsum("ik,k->i", wcon, np.linalg.solve(gmat, acon @ d))
             else:
                 d = self.chol.solve(grad)
-            step = 1.0
-            while True:
-                f_new, eta_new = objective(x + step * d)
-                if f_new >= f - 1e-10 * (1.0 + abs(f)) or step < 1e-6:
-                    break
-                step *= 0.5
-            x = x + step * d
-            f, eta = f_new, eta_new
-            if np.max(np.abs(step * d)) < tol * (1.0 + np.max(np.abs(x))):
-                converged = True
+            x, (f, eta), converged = damped_step(objective, x, d, f, tol)
+            if converged:
                 break
         if not converged:
             raise ModelError(

@@ -318,16 +318,8 @@ class _SpaceTimeLatent:
             wcon[:nw] = (tau_d / dvec)[:, None] * self._m_apply(sol[:, 1:], av, au)
             gmat = np.asarray(self.a_w @ wcon[nw:])
             d = d - np.einsum("ik,k->i", wcon, np.linalg.solve(gmat, self.a_w @ d[nw:]))
-            step = 1.0
-            while True:
-                f_new = self._objective(x + step * d, coefs, e)
-                if f_new >= f - 1e-10 * (1.0 + abs(f)) or step < 1e-6:
-                    break
-                step *= 0.5
-            x = x + step * d
-            f = f_new
-            if np.max(np.abs(step * d)) < tol * (1.0 + np.max(np.abs(x))):
-                converged = True
+            x, (f,), converged = eng.damped_step(lambda xx: (self._objective(xx, coefs, e),), x, d, f, tol)
+            if converged:
                 break
         if not converged:
             raise ModelError(
