@@ -622,7 +622,8 @@ def test_newton_search_follows_a_flat_approach():
 
 
 def test_newton_search_stops_at_a_bound():
-    """Mode outside the box: the search stops on the bound with that coordinate held fixed."""
+    """Mode outside the box (analytic: the maximiser of this separable quadratic on the box is (9, 1)):
+    the search stops on the bound with that coordinate held fixed."""
 
     def f(t):
         return -0.5 * (t[0] - 12.0) ** 2 - 0.5 * (t[1] - 1.0) ** 2
